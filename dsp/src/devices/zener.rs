@@ -1,0 +1,314 @@
+//! Zener diode: exponential forward and breakdown junction with series resistance, and the antiseries pair.
+
+/// Thermal voltage used throughout (V), BRIEF section 4.
+pub const THERMAL_VOLTAGE: f64 = 0.025852;
+/// Saturation current of the forward junction (A), BRIEF section 4.
+pub const SATURATION_CURRENT: f64 = 1e-14;
+/// Current scale of the asinh map used by the junction tables (A).
+pub const CURRENT_SCALE: f64 = 1e-12;
+/// Exponent above which the junction exponentials continue linearly (as the ngspice reference does).
+const FORWARD_LIMIT_VOLTS: f64 = 1.0;
+const BREAKDOWN_EXPONENT_LIMIT: f64 = 12.0;
+
+/// Datasheet figures of one Zener part: Vz at Izt, Zzt at Izt, Zzk at Izk.
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub struct ZenerDatasheet {
+    pub volts: f64,
+    pub izt: f64,
+    pub zzt: f64,
+    pub izk: f64,
+    pub zzk: f64,
+}
+
+/// Zener, Ij = Is (exp(Vj/Vt) - 1) - Izt (exp(-(Vj + Vzj)/(nbv Vt)) - exp(-Vzj/(nbv Vt))), V = Vj + rs I (BRIEF s. 4).
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub struct Zener {
+    /// Breakdown voltage at the test current (V).
+    pub volts: f64,
+    /// Test current (A).
+    pub izt: f64,
+    /// Breakdown emission coefficient.
+    pub nbv: f64,
+    /// Series resistance (ohm).
+    pub rs: f64,
+    /// Junction breakdown voltage, Vz - Izt rs (V).
+    pub vzj: f64,
+}
+
+impl Zener {
+    /// Fit to datasheet figures: nbv = (Zzk - Zzt) / (Vt (1/Izk - 1/Izt)), rs = Zzt - nbv Vt / Izt,
+    /// falling back to rs = 0, nbv = Zzk Izk / Vt when rs would be negative (BRIEF section 4).
+    pub fn fit(sheet: &ZenerDatasheet) -> Zener {
+        let vt = THERMAL_VOLTAGE;
+        let mut nbv = (sheet.zzk - sheet.zzt) / (vt * (1.0 / sheet.izk - 1.0 / sheet.izt));
+        let mut rs = sheet.zzt - nbv * vt / sheet.izt;
+        if rs < 0.0 {
+            rs = 0.0;
+            nbv = sheet.zzk * sheet.izk / vt;
+        }
+        Zener {
+            volts: sheet.volts,
+            izt: sheet.izt,
+            nbv,
+            rs,
+            vzj: sheet.volts - sheet.izt * rs,
+        }
+    }
+
+    /// Junction current (A, anode to cathode) and its slope (S) at junction voltage `vj`.
+    #[inline]
+    pub fn junction_current(&self, vj: f64) -> (f64, f64) {
+        let vt = THERMAL_VOLTAGE;
+        let nvt = self.nbv * vt;
+        let (fwd, dfwd) = if vj < FORWARD_LIMIT_VOLTS {
+            let e = (vj / vt).exp();
+            (SATURATION_CURRENT * (e - 1.0), SATURATION_CURRENT * e / vt)
+        } else {
+            let e = (FORWARD_LIMIT_VOLTS / vt).exp();
+            (
+                SATURATION_CURRENT * (e * (1.0 + (vj - FORWARD_LIMIT_VOLTS) / vt) - 1.0),
+                SATURATION_CURRENT * e / vt,
+            )
+        };
+        let x = -(vj + self.vzj) / nvt;
+        let (brk, dbrk) = if x < BREAKDOWN_EXPONENT_LIMIT {
+            let e = x.exp();
+            (e, -e / nvt)
+        } else {
+            let e = BREAKDOWN_EXPONENT_LIMIT.exp();
+            (e * (1.0 + x - BREAKDOWN_EXPONENT_LIMIT), -e / nvt)
+        };
+        let zero_bias = (-self.vzj / nvt).exp();
+        (
+            fwd - self.izt * (brk - zero_bias),
+            dfwd - self.izt * dbrk,
+        )
+    }
+
+    /// Terminal voltage (anode to cathode) of the part carrying `current` (A), solved exactly.
+    pub fn voltage_at(&self, current: f64) -> f64 {
+        self.junction_voltage_at(current, 0.0) + self.rs * current
+    }
+
+    /// Junction voltage carrying `current`, by safeguarded Newton from `guess`.
+    pub fn junction_voltage_at(&self, current: f64, guess: f64) -> f64 {
+        let mut lo = -self.vzj - 200.0;
+        let mut hi = FORWARD_LIMIT_VOLTS + 50.0;
+        let mut v = guess.clamp(lo, hi);
+        for _ in 0..200 {
+            let (i, g) = self.junction_current(v);
+            let r = i - current;
+            if r > 0.0 {
+                hi = v;
+            } else {
+                lo = v;
+            }
+            let mut next = v - r / g;
+            if !(next > lo && next < hi) {
+                next = 0.5 * (lo + hi);
+            }
+            if (next - v).abs() < 1e-13 * (1.0 + v.abs()) {
+                return next;
+            }
+            v = next;
+        }
+        v
+    }
+
+    /// Small-signal resistance dV/dI (ohm) at `current` (A, anode to cathode).
+    pub fn dynamic_resistance(&self, current: f64) -> f64 {
+        let vj = self.junction_voltage_at(current, 0.0);
+        1.0 / self.junction_current(vj).1 + self.rs
+    }
+}
+
+/// Junction voltage as a function of s = asinh(I / CURRENT_SCALE), tabulated uniformly in s.
+#[derive(Clone, Debug)]
+pub struct JunctionTable {
+    start: f64,
+    step: f64,
+    inv_step: f64,
+    volts: Vec<f64>,
+    slope: Vec<f64>,
+}
+
+const TABLE_HALF_SPAN: f64 = 32.0;
+const TABLE_POINTS: usize = 2049;
+
+impl JunctionTable {
+    /// Tabulate the inverse of the junction law of `part` (built once per part, not in the audio path).
+    pub fn build(part: &Zener) -> JunctionTable {
+        let step = 2.0 * TABLE_HALF_SPAN / (TABLE_POINTS - 1) as f64;
+        let mut volts = vec![0.0; TABLE_POINTS];
+        let mut slope = vec![0.0; TABLE_POINTS];
+        let centre = TABLE_POINTS / 2;
+        // March outward from zero current so each solve starts next to its answer.
+        for half in [0, 1] {
+            let mut guess = 0.0;
+            for k in 0..=centre {
+                let idx = if half == 0 { centre + k } else { centre - k };
+                let s = -TABLE_HALF_SPAN + idx as f64 * step;
+                let current = CURRENT_SCALE * s.sinh();
+                let vj = part.junction_voltage_at(current, guess);
+                let (_, g) = part.junction_current(vj);
+                volts[idx] = vj;
+                slope[idx] = CURRENT_SCALE * s.cosh() / g;
+                guess = vj;
+            }
+        }
+        JunctionTable {
+            start: -TABLE_HALF_SPAN,
+            step,
+            inv_step: 1.0 / step,
+            volts,
+            slope,
+        }
+    }
+
+    /// Junction voltage and dV/ds at s (cubic Hermite inside, linear outside the table).
+    #[inline]
+    pub fn eval(&self, s: f64) -> (f64, f64) {
+        let pos = (s - self.start) * self.inv_step;
+        let last = self.volts.len() - 1;
+        if pos <= 0.0 {
+            return (self.volts[0] + (s - self.start) * self.slope[0], self.slope[0]);
+        }
+        if pos >= last as f64 {
+            let end = self.start + last as f64 * self.step;
+            return (
+                self.volts[last] + (s - end) * self.slope[last],
+                self.slope[last],
+            );
+        }
+        let idx = pos as usize;
+        let t = pos - idx as f64;
+        let (y0, y1) = (self.volts[idx], self.volts[idx + 1]);
+        let (m0, m1) = (self.slope[idx] * self.step, self.slope[idx + 1] * self.step);
+        let t2 = t * t;
+        let t3 = t2 * t;
+        let h00 = 2.0 * t3 - 3.0 * t2 + 1.0;
+        let h10 = t3 - 2.0 * t2 + t;
+        let h01 = -2.0 * t3 + 3.0 * t2;
+        let h11 = t3 - t2;
+        let value = h00 * y0 + h10 * m0 + h01 * y1 + h11 * m1;
+        let dh00 = 6.0 * t2 - 6.0 * t;
+        let dh10 = 3.0 * t2 - 4.0 * t + 1.0;
+        let dh01 = -6.0 * t2 + 6.0 * t;
+        let dh11 = 3.0 * t2 - 2.0 * t;
+        let deriv = (dh00 * y0 + dh10 * m0 + dh01 * y1 + dh11 * m1) * self.inv_step;
+        (value, deriv)
+    }
+}
+
+/// One part of the pair with its precomputed junction table.
+#[derive(Clone, Debug)]
+pub struct TabulatedZener {
+    pub part: Zener,
+    table: JunctionTable,
+}
+
+impl TabulatedZener {
+    pub fn new(part: Zener) -> Self {
+        TabulatedZener {
+            table: JunctionTable::build(&part),
+            part,
+        }
+    }
+}
+
+/// State of the pair at one operating point, parametrised by s = asinh(I / CURRENT_SCALE).
+#[derive(Clone, Copy, Debug, Default, PartialEq)]
+pub struct PairPoint {
+    /// Pair voltage, clamp node to ground (V).
+    pub volts: f64,
+    /// dV/ds (V).
+    pub volts_ds: f64,
+    /// Pair current, clamp node to ground (A).
+    pub current: f64,
+    /// dI/ds (A).
+    pub current_ds: f64,
+    /// Voltage across the positive-clamp part, its cathode (clamp side) to anode (V).
+    pub positive_part_volts: f64,
+    /// Voltage across the negative-clamp part, its anode (middle) to cathode (ground side) (V).
+    pub negative_part_volts: f64,
+}
+
+/// Antiseries pair, clamp node -> positive part (cathode to the node) -> negative part (cathode to ground).
+/// Either part may be absent (a wire), so one part alone is a single Zener to ground.
+#[derive(Clone, Debug, Default)]
+pub struct ZenerPair {
+    pub positive: Option<TabulatedZener>,
+    pub negative: Option<TabulatedZener>,
+}
+
+impl ZenerPair {
+    pub fn new(positive: Option<Zener>, negative: Option<Zener>) -> Self {
+        ZenerPair {
+            positive: positive.map(TabulatedZener::new),
+            negative: negative.map(TabulatedZener::new),
+        }
+    }
+
+    /// True when the switch position holds no part (the clamp node is left open).
+    pub fn is_open(&self) -> bool {
+        self.positive.is_none() && self.negative.is_none()
+    }
+
+    /// Voltage and current of the pair at s (current I = CURRENT_SCALE sinh s flows clamp node to ground).
+    /// The positive part carries -I anode to cathode, the negative part +I; V = Vneg(I) - Vpos(-I).
+    #[inline]
+    pub fn at(&self, s: f64) -> PairPoint {
+        let sinh = s.sinh();
+        let cosh = (1.0 + sinh * sinh).sqrt();
+        let current = CURRENT_SCALE * sinh;
+        let current_ds = CURRENT_SCALE * cosh;
+        let mut point = PairPoint {
+            current,
+            current_ds,
+            ..Default::default()
+        };
+        if let Some(neg) = &self.negative {
+            let (vj, dvj) = neg.table.eval(s);
+            point.negative_part_volts = vj + neg.part.rs * current;
+            point.volts += point.negative_part_volts;
+            point.volts_ds += dvj + neg.part.rs * current_ds;
+        }
+        if let Some(pos) = &self.positive {
+            let (vj, dvj) = pos.table.eval(-s);
+            // Anode-to-cathode voltage of the positive part is vj - rs I; across it cathode to anode is the negative.
+            point.positive_part_volts = -(vj - pos.part.rs * current);
+            point.volts += point.positive_part_volts;
+            point.volts_ds += dvj + pos.part.rs * current_ds;
+        }
+        point
+    }
+
+    /// Clamp thresholds (V) where the pair carries `current` (A) each way: (positive, negative).
+    pub fn thresholds_at(&self, current: f64) -> (f64, f64) {
+        let s_of = |i: f64| (i / CURRENT_SCALE).asinh();
+        (self.at(s_of(current)).volts, self.at(s_of(-current)).volts)
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn table_matches_exact_inverse() {
+        let part = Zener::fit(&ZenerDatasheet {
+            volts: 5.1,
+            izt: 0.049,
+            zzt: 7.0,
+            izk: 0.001,
+            zzk: 550.0,
+        });
+        let table = JunctionTable::build(&part);
+        for &i in &[-0.05, -1e-3, -1e-6, -1e-9, 0.0, 1e-9, 1e-6, 1e-3, 0.05] {
+            let s: f64 = (i / CURRENT_SCALE).asinh();
+            let exact = part.junction_voltage_at(i, 0.0);
+            let (tab, _) = table.eval(s);
+            assert!((tab - exact).abs() < 1e-6, "i={i} exact={exact} tab={tab}");
+        }
+    }
+}

@@ -1,0 +1,417 @@
+//! The engine: input calibration, the gain pot, oversampling around the stage, smoothing of pot moves,
+//! latency-compensated probes in real volts and the clamp meters. Real-time safe after `Engine::new`.
+
+use crate::circuit::{Circuit, CircuitError, Settings};
+use crate::oversampling::{self, Downsampler, Quality, Upsampler};
+use crate::pot::PotLaw;
+use crate::stage::{Stage, StageProbe};
+
+/// Largest voltage at the input jack the model accepts; anything beyond (or not finite) is limited first.
+pub const INPUT_LIMIT_VOLTS: f64 = 100.0;
+/// Pair current above which the clamp counts as conducting, for "share of time clamped" (A).
+pub const CLAMPED_CURRENT: f64 = 10e-6;
+/// Pot moves glide over this time (s), so automation never clicks.
+const SMOOTHING_SECONDS: f64 = 0.01;
+/// The level pot's network is recomputed at most every this many base samples while it glides.
+const LEVEL_UPDATE_INTERVAL: usize = 16;
+
+/// Node voltages and currents the engine can write out, each at the base rate and aligned with the input.
+#[derive(Clone, Copy, Debug, PartialEq, Eq, Hash)]
+pub enum Probe {
+    /// Listening output: wiper volts scaled by `[listen] volts_at_full_scale`.
+    Listen,
+    /// Clamp node (V).
+    Clamp,
+    /// Level pot wiper (V).
+    Wiper,
+    /// Zener pair current, clamp node to ground (A).
+    ZenerCurrent,
+    /// Across the positive-clamp part, cathode to anode (V).
+    PositivePartVolts,
+    /// Across the negative-clamp part, anode to cathode (V).
+    NegativePartVolts,
+}
+
+impl Probe {
+    pub const ALL: [Probe; 6] = [
+        Probe::Listen,
+        Probe::Clamp,
+        Probe::Wiper,
+        Probe::ZenerCurrent,
+        Probe::PositivePartVolts,
+        Probe::NegativePartVolts,
+    ];
+    fn index(self) -> usize {
+        self as usize
+    }
+}
+
+/// One base-rate output sample of every probe.
+#[derive(Clone, Copy, Debug, Default, PartialEq)]
+pub struct Frame {
+    pub listen: f64,
+    pub clamp_volts: f64,
+    pub wiper_volts: f64,
+    pub zener_current: f64,
+    pub positive_part_volts: f64,
+    pub negative_part_volts: f64,
+}
+
+impl Frame {
+    pub fn get(&self, probe: Probe) -> f64 {
+        match probe {
+            Probe::Listen => self.listen,
+            Probe::Clamp => self.clamp_volts,
+            Probe::Wiper => self.wiper_volts,
+            Probe::ZenerCurrent => self.zener_current,
+            Probe::PositivePartVolts => self.positive_part_volts,
+            Probe::NegativePartVolts => self.negative_part_volts,
+        }
+    }
+}
+
+/// Running statistics at the internal rate, from the last `reset_meters`.
+#[derive(Clone, Copy, Debug, Default, PartialEq)]
+pub struct Meters {
+    pub samples: u64,
+    pub clamped_samples: u64,
+    pub clamp_peak_positive: f64,
+    pub clamp_peak_negative: f64,
+    pub zener_peak_current: f64,
+    pub zener_current_square_sum: f64,
+    pub positive_part_peak_watts: f64,
+    pub negative_part_peak_watts: f64,
+    pub positive_part_energy: f64,
+    pub negative_part_energy: f64,
+    pub gain_grid_current_peak: f64,
+    pub follower_grid_current_peak: f64,
+    pub gain_plate_current_min: f64,
+    pub follower_plate_current_min: f64,
+    pub newton_iterations: u64,
+    pub newton_failures: u64,
+    /// Internal sample period (s).
+    pub period: f64,
+}
+
+impl Meters {
+    fn new(period: f64) -> Self {
+        Meters {
+            gain_plate_current_min: f64::INFINITY,
+            follower_plate_current_min: f64::INFINITY,
+            period,
+            ..Default::default()
+        }
+    }
+    /// Share of time the pair conducts more than CLAMPED_CURRENT (0..1).
+    pub fn share_clamped(&self) -> f64 {
+        if self.samples == 0 {
+            0.0
+        } else {
+            self.clamped_samples as f64 / self.samples as f64
+        }
+    }
+    /// RMS pair current (A).
+    pub fn zener_rms_current(&self) -> f64 {
+        if self.samples == 0 {
+            0.0
+        } else {
+            (self.zener_current_square_sum / self.samples as f64).sqrt()
+        }
+    }
+    /// Average power (W) in the positive-clamp and negative-clamp parts.
+    pub fn average_watts(&self) -> (f64, f64) {
+        let time = self.samples as f64 * self.period;
+        if time == 0.0 {
+            (0.0, 0.0)
+        } else {
+            (self.positive_part_energy / time, self.negative_part_energy / time)
+        }
+    }
+    /// Peak-to-peak clamp node swing (V).
+    pub fn clamp_peak_to_peak(&self) -> f64 {
+        self.clamp_peak_positive - self.clamp_peak_negative
+    }
+    fn record(&mut self, p: &StageProbe, iterations: u32, converged: bool) {
+        self.samples += 1;
+        let i = p.zener_current;
+        if i.abs() > CLAMPED_CURRENT {
+            self.clamped_samples += 1;
+        }
+        self.clamp_peak_positive = self.clamp_peak_positive.max(p.clamp_volts);
+        self.clamp_peak_negative = self.clamp_peak_negative.min(p.clamp_volts);
+        self.zener_peak_current = self.zener_peak_current.max(i.abs());
+        self.zener_current_square_sum += i * i;
+        let (wp, wn) = (p.positive_part_watts(), p.negative_part_watts());
+        self.positive_part_peak_watts = self.positive_part_peak_watts.max(wp);
+        self.negative_part_peak_watts = self.negative_part_peak_watts.max(wn);
+        self.positive_part_energy += wp * self.period;
+        self.negative_part_energy += wn * self.period;
+        self.gain_grid_current_peak = self.gain_grid_current_peak.max(p.gain_grid_current);
+        self.follower_grid_current_peak = self.follower_grid_current_peak.max(p.follower_grid_current);
+        self.gain_plate_current_min = self.gain_plate_current_min.min(p.gain_plate_current);
+        self.follower_plate_current_min = self.follower_plate_current_min.min(p.follower_plate_current);
+        self.newton_iterations += iterations as u64;
+        if !converged {
+            self.newton_failures += 1;
+        }
+    }
+}
+
+/// One-pole glide toward a target.
+#[derive(Clone, Copy, Debug)]
+struct Glide {
+    value: f64,
+    target: f64,
+    coeff: f64,
+}
+
+impl Glide {
+    fn new(value: f64, rate: f64) -> Self {
+        Glide {
+            value,
+            target: value,
+            coeff: 1.0 - (-1.0 / (SMOOTHING_SECONDS * rate)).exp(),
+        }
+    }
+    #[inline]
+    fn next(&mut self) -> f64 {
+        self.value += (self.target - self.value) * self.coeff;
+        if (self.target - self.value).abs() < 1e-9 {
+            self.value = self.target;
+        }
+        self.value
+    }
+    fn moving(&self) -> bool {
+        self.value != self.target
+    }
+}
+
+/// Stage plus oversampling and controls, at one host sample rate.
+#[derive(Clone, Debug)]
+pub struct Engine {
+    stage: Stage,
+    quality: Quality,
+    sample_rate: f64,
+    up: Upsampler,
+    down: [Downsampler; 6],
+    high_in: [f64; 16],
+    high_out: [[f64; 16]; 6],
+    input_volts_per_unit: f64,
+    listen_units_per_volt: f64,
+    gain_law: PotLaw,
+    gain: Glide,
+    level: Glide,
+    level_countdown: usize,
+    meters: Meters,
+    frame: Frame,
+}
+
+impl Engine {
+    /// Prepare the model for `circuit` at host rate `sample_rate` (22.05 kHz .. 384 kHz). Allocates and solves
+    /// the DC operating point: call outside the audio thread.
+    pub fn new(
+        circuit: &Circuit,
+        sample_rate: f64,
+        quality: Quality,
+        settings: Settings,
+    ) -> Result<Engine, CircuitError> {
+        circuit.validate()?;
+        circuit.check_position(settings.position)?;
+        if !(22_050.0..=384_000.0).contains(&sample_rate) {
+            return Err(CircuitError(format!(
+                "sample rate {sample_rate} Hz is outside 22050 .. 384000 Hz"
+            )));
+        }
+        for (name, v) in [("gain", settings.gain), ("level", settings.level)] {
+            if !(0.0..=1.0).contains(&v) {
+                return Err(CircuitError(format!("{name} = {v}: a pot position runs from 0 to 1")));
+            }
+        }
+        let factor = quality.factor();
+        let stage = Stage::new(
+            circuit,
+            sample_rate * factor as f64,
+            settings.level,
+            settings.position,
+        );
+        let mut engine = Engine {
+            stage,
+            quality,
+            sample_rate,
+            up: Upsampler::new(quality),
+            down: std::array::from_fn(|_| Downsampler::new(quality)),
+            high_in: [0.0; 16],
+            high_out: [[0.0; 16]; 6],
+            input_volts_per_unit: circuit.drive.volts_at_full_scale,
+            listen_units_per_volt: 1.0 / circuit.listen.volts_at_full_scale,
+            gain_law: circuit.gain_stage.gain_pot_law,
+            gain: Glide::new(settings.gain, sample_rate),
+            level: Glide::new(settings.level, sample_rate),
+            level_countdown: 0,
+            meters: Meters::new(1.0 / (sample_rate * factor as f64)),
+            frame: Frame::default(),
+        };
+        engine.reset();
+        Ok(engine)
+    }
+
+    /// Return to the DC operating point with silent history (no thump on the next sample).
+    pub fn reset(&mut self) {
+        self.gain.value = self.gain.target;
+        self.level.value = self.level.target;
+        self.stage.set_level(self.level.value);
+        self.stage.reset();
+        let p = *self.stage.probe();
+        self.up.reset(0.0);
+        let rest = Self::probe_values(&p, self.listen_units_per_volt);
+        for (d, v) in self.down.iter_mut().zip(rest) {
+            d.reset(v);
+        }
+        self.meters = Meters::new(self.meters.period);
+    }
+
+    fn probe_values(p: &StageProbe, listen_scale: f64) -> [f64; 6] {
+        [
+            p.wiper_volts * listen_scale,
+            p.clamp_volts,
+            p.wiper_volts,
+            p.zener_current,
+            p.positive_part_volts,
+            p.negative_part_volts,
+        ]
+    }
+
+    /// Latency in host samples added by oversampling (exact).
+    pub fn latency(&self) -> usize {
+        oversampling::latency(self.quality)
+    }
+
+    pub fn quality(&self) -> Quality {
+        self.quality
+    }
+
+    pub fn sample_rate(&self) -> f64 {
+        self.sample_rate
+    }
+
+    /// Gain pot rotation 0..1 (glides).
+    pub fn set_gain(&mut self, gain: f64) {
+        if gain.is_finite() {
+            self.gain.target = gain.clamp(0.0, 1.0);
+        }
+    }
+
+    /// Level pot rotation 0..1 (glides).
+    pub fn set_level(&mut self, level: f64) {
+        if level.is_finite() {
+            self.level.target = level.clamp(0.0, 1.0);
+        }
+    }
+
+    /// Switch position (index into the circuit's list; clamped). Instant, as the real switch is: crossfade
+    /// between engines for click-free comparison.
+    pub fn set_position(&mut self, position: usize) {
+        self.stage.set_position(position);
+    }
+
+    /// Peak volts at the input jack for a full-scale sample.
+    pub fn set_input_calibration(&mut self, volts_at_full_scale: f64) {
+        if volts_at_full_scale.is_finite() && volts_at_full_scale > 0.0 {
+            self.input_volts_per_unit = volts_at_full_scale;
+        }
+    }
+
+    /// The stage (for pair data and readouts).
+    pub fn stage(&self) -> &Stage {
+        &self.stage
+    }
+
+    /// Mutable stage, for replacing a pair (not real-time safe: builds tables).
+    pub fn stage_mut(&mut self) -> &mut Stage {
+        &mut self.stage
+    }
+
+    pub fn meters(&self) -> &Meters {
+        &self.meters
+    }
+
+    pub fn reset_meters(&mut self) {
+        self.meters = Meters::new(self.meters.period);
+    }
+
+    /// Process one host sample (full-scale units) and return every probe at the host rate.
+    #[inline]
+    pub fn process_sample(&mut self, input: f32) -> &Frame {
+        let mut x = input as f64;
+        if !x.is_finite() {
+            x = 0.0;
+        }
+        let volts = (x * self.input_volts_per_unit).clamp(-INPUT_LIMIT_VOLTS, INPUT_LIMIT_VOLTS);
+        let gain = self.gain.next();
+        let level = self.level.next();
+        if self.level.moving() || self.level_countdown > 0 {
+            if self.level_countdown == 0 {
+                self.stage.set_level(level);
+                self.level_countdown = if self.level.moving() {
+                    LEVEL_UPDATE_INTERVAL
+                } else {
+                    0
+                };
+            } else {
+                self.level_countdown -= 1;
+                if self.level_countdown == 0 && !self.level.moving() {
+                    self.stage.set_level(level);
+                }
+            }
+        }
+        let attenuation = self.gain_law.fraction(gain);
+        let factor = self.quality.factor();
+        self.up.process(volts * attenuation, &mut self.high_in[..factor]);
+        for k in 0..factor {
+            let p = *self.stage.process(self.high_in[k]);
+            let report = self.stage.last_report();
+            let values = Self::probe_values(&p, self.listen_units_per_volt);
+            self.meters.record(&p, report.iterations, report.converged);
+            for (probe, v) in values.iter().enumerate() {
+                self.high_out[probe][k] = *v;
+            }
+        }
+        let mut out = [0.0; 6];
+        for (probe, o) in out.iter_mut().enumerate() {
+            let v = self.down[probe].process(&self.high_out[probe][..factor]);
+            *o = if v.is_finite() { v } else { 0.0 };
+        }
+        self.frame = Frame {
+            listen: out[Probe::Listen.index()],
+            clamp_volts: out[Probe::Clamp.index()],
+            wiper_volts: out[Probe::Wiper.index()],
+            zener_current: out[Probe::ZenerCurrent.index()],
+            positive_part_volts: out[Probe::PositivePartVolts.index()],
+            negative_part_volts: out[Probe::NegativePartVolts.index()],
+        };
+        &self.frame
+    }
+
+    /// Process a block, writing one probe. Output is delayed by `latency()` samples.
+    pub fn process_block(&mut self, input: &[f32], output: &mut [f32], probe: Probe) {
+        let _guard = crate::denormals::FlushGuard::new();
+        for (x, y) in input.iter().zip(output.iter_mut()) {
+            *y = self.process_sample(*x).get(probe) as f32;
+        }
+    }
+
+    /// Render a whole signal offline for one probe, latency removed (output[n] lines up with input[n]).
+    pub fn render(&mut self, input: &[f32], probe: Probe) -> Vec<f32> {
+        let latency = self.latency();
+        let mut out = Vec::with_capacity(input.len());
+        let _guard = crate::denormals::FlushGuard::new();
+        for n in 0..input.len() + latency {
+            let x = input.get(n).copied().unwrap_or(0.0);
+            let v = self.process_sample(x).get(probe) as f32;
+            if n >= latency {
+                out.push(v);
+            }
+        }
+        out
+    }
+}

@@ -1,0 +1,166 @@
+//! Buyable Zener parts: the 1 W 1N4728A-1N4764A family table and the E24 voltage series.
+
+use crate::devices::zener::ZenerDatasheet;
+
+/// One row of a family datasheet table.
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub struct FamilyRow {
+    pub part_number: &'static str,
+    pub sheet: ZenerDatasheet,
+}
+
+/// Family of parts sharing a package and power rating.
+#[derive(Clone, Copy, Debug)]
+pub struct Family {
+    pub name: &'static str,
+    /// Rated power dissipation at 25 C lead temperature (W).
+    pub power_rating_watts: f64,
+    pub rows: &'static [FamilyRow],
+}
+
+macro_rules! rows {
+    ($( $pn:literal $v:literal $izt:literal $zzt:literal $izk:literal $zzk:literal ;)*) => {
+        &[$(FamilyRow { part_number: $pn, sheet: ZenerDatasheet {
+            volts: $v, izt: $izt * 1e-3, zzt: $zzt, izk: $izk * 1e-3, zzk: $zzk } },)*]
+    };
+}
+
+/// 1 W glass/plastic 1N47xxA family: Vz (V), Izt (mA), Zzt (ohm), Izk (mA), Zzk (ohm) maximum limits.
+/// Typed from memory of the common industry datasheet table [memory]; rows 1N4733A, 1N4747A and 1N4749A are
+/// the check values of BRIEF section 4 and are verified by a test.
+pub const FAMILY_1N47XXA: Family = Family {
+    name: "1N47xxA (1 W)",
+    power_rating_watts: 1.0,
+    rows: rows![
+        "1N4728A" 3.3 76.0 10.0 1.0 400.0;
+        "1N4729A" 3.6 69.0 10.0 1.0 400.0;
+        "1N4730A" 3.9 64.0 9.0 1.0 400.0;
+        "1N4731A" 4.3 58.0 9.0 1.0 400.0;
+        "1N4732A" 4.7 53.0 8.0 1.0 500.0;
+        "1N4733A" 5.1 49.0 7.0 1.0 550.0;
+        "1N4734A" 5.6 45.0 5.0 1.0 600.0;
+        "1N4735A" 6.2 41.0 2.0 1.0 700.0;
+        "1N4736A" 6.8 37.0 3.5 1.0 700.0;
+        "1N4737A" 7.5 34.0 4.0 0.5 700.0;
+        "1N4738A" 8.2 31.0 4.5 0.5 700.0;
+        "1N4739A" 9.1 28.0 5.0 0.5 700.0;
+        "1N4740A" 10.0 25.0 7.0 0.25 700.0;
+        "1N4741A" 11.0 23.0 8.0 0.25 700.0;
+        "1N4742A" 12.0 21.0 9.0 0.25 700.0;
+        "1N4743A" 13.0 19.0 10.0 0.25 700.0;
+        "1N4744A" 15.0 17.0 14.0 0.25 700.0;
+        "1N4745A" 16.0 15.5 16.0 0.25 700.0;
+        "1N4746A" 18.0 14.0 20.0 0.25 750.0;
+        "1N4747A" 20.0 12.5 22.0 0.25 750.0;
+        "1N4748A" 22.0 11.5 23.0 0.25 750.0;
+        "1N4749A" 24.0 10.5 25.0 0.25 750.0;
+        "1N4750A" 27.0 9.5 35.0 0.25 750.0;
+        "1N4751A" 30.0 8.5 40.0 0.25 1000.0;
+        "1N4752A" 33.0 7.5 45.0 0.25 1000.0;
+        "1N4753A" 36.0 7.0 50.0 0.25 1000.0;
+        "1N4754A" 39.0 6.5 60.0 0.25 1000.0;
+        "1N4755A" 43.0 6.0 70.0 0.25 1500.0;
+        "1N4756A" 47.0 5.5 80.0 0.25 1500.0;
+        "1N4757A" 51.0 5.0 95.0 0.25 1500.0;
+        "1N4758A" 56.0 4.5 110.0 0.25 2000.0;
+        "1N4759A" 62.0 4.0 125.0 0.25 2000.0;
+        "1N4760A" 68.0 3.7 150.0 0.25 2000.0;
+        "1N4761A" 75.0 3.3 175.0 0.25 2000.0;
+        "1N4762A" 82.0 3.0 200.0 0.25 3000.0;
+        "1N4763A" 91.0 2.8 250.0 0.25 3000.0;
+        "1N4764A" 100.0 2.5 350.0 0.25 3000.0;
+    ],
+};
+
+/// E24 preferred-number mantissas (IEC 60063).
+pub const E24: [f64; 24] = [
+    1.0, 1.1, 1.2, 1.3, 1.5, 1.6, 1.8, 2.0, 2.2, 2.4, 2.7, 3.0, 3.3, 3.6, 3.9, 4.3, 4.7, 5.1, 5.6, 6.2,
+    6.8, 7.5, 8.2, 9.1,
+];
+
+/// E24 values (IEC 60063) from `low` to `high` inclusive.
+pub fn e24_between(low: f64, high: f64) -> Vec<f64> {
+    let mut out = Vec::new();
+    let mut decade = 0.1;
+    while decade <= high * 10.0 {
+        for m in E24 {
+            let v = ((m * decade) * 1000.0).round() / 1000.0;
+            if v >= low - 1e-9 && v <= high + 1e-9 {
+                out.push(v);
+            }
+        }
+        decade *= 10.0;
+    }
+    out
+}
+
+/// Nearest E24 value (IEC 60063) to `volts`, measured on a log scale.
+pub fn nearest_e24(volts: f64) -> f64 {
+    let volts = volts.max(1e-3);
+    let exponent = volts.log10().floor();
+    let decade = 10f64.powf(exponent);
+    let mut best = E24[0] * decade;
+    for scale in [decade, decade * 10.0] {
+        for m in E24 {
+            let candidate = m * scale;
+            if (candidate / volts).ln().abs() < (best / volts).ln().abs() {
+                best = candidate;
+            }
+        }
+    }
+    (best * 1000.0).round() / 1000.0
+}
+
+impl Family {
+    /// Exact row for a nominal voltage, if the family has one.
+    pub fn row(&self, volts: f64) -> Option<&FamilyRow> {
+        self.rows
+            .iter()
+            .find(|r| (r.sheet.volts - volts).abs() < 1e-6)
+    }
+
+    /// Datasheet figures for any voltage in the family's range: the row itself, or knee data interpolated on a
+    /// log scale between the neighbouring rows (outside the range, the end row's data scaled to `volts`).
+    pub fn sheet_for(&self, volts: f64) -> ZenerDatasheet {
+        if let Some(row) = self.row(volts) {
+            return row.sheet;
+        }
+        let rows = self.rows;
+        let first = rows[0].sheet;
+        let last = rows[rows.len() - 1].sheet;
+        if volts <= first.volts {
+            return ZenerDatasheet { volts, ..first };
+        }
+        if volts >= last.volts {
+            return ZenerDatasheet { volts, ..last };
+        }
+        let upper = rows.iter().position(|r| r.sheet.volts > volts).unwrap_or(rows.len() - 1);
+        let (a, b) = (rows[upper - 1].sheet, rows[upper].sheet);
+        let t = (volts / a.volts).ln() / (b.volts / a.volts).ln();
+        let lerp = |x: f64, y: f64| (x.ln() + t * (y.ln() - x.ln())).exp();
+        ZenerDatasheet {
+            volts,
+            izt: lerp(a.izt, b.izt),
+            zzt: lerp(a.zzt, b.zzt),
+            izk: lerp(a.izk, b.izk),
+            zzk: lerp(a.zzk, b.zzk),
+        }
+    }
+
+    /// Part number of the row at `volts`, if any.
+    pub fn part_number(&self, volts: f64) -> Option<&'static str> {
+        self.row(volts).map(|r| r.part_number)
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn e24_series_has_24_values_a_decade() {
+        assert_eq!(e24_between(10.0, 91.0).len(), 24);
+        assert_eq!(nearest_e24(19.3), 20.0);
+        assert_eq!(nearest_e24(5.5), 5.6);
+    }
+}

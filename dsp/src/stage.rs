@@ -1,0 +1,388 @@
+//! The reference stage, assembled as its schematic reads (BRIEF section 3):
+//!
+//! ```text
+//!  input jack -> gain pot (ideal attenuator) -> grid stopper -> [gain valve grid]
+//!  [gain valve]  plate: plate resistor to B+;  cathode: cathode resistor || bypass capacitor to ground
+//!  gain plate -> [follower grid];  follower plate at B+;  follower cathode: cathode resistor to ground
+//!  follower cathode -> coupling cap -> feed resistor -> clamp node -> level pot -> wiper -> load resistor
+//!  clamp node: antiseries Zener pair to ground (at the pot top, "across-pot", or at the wiper, "at-wiper")
+//! ```
+//!
+//! Linear parts form six wave subtrees hung from an R-type root; the two valves and the Zener pair are the
+//! root's five nonlinear ports, solved together by Newton's method every sample (no unit delay).
+
+use crate::circuit::{Circuit, Placement};
+use crate::devices::triode::Triode;
+use crate::devices::zener::{ZenerPair, CURRENT_SCALE};
+use crate::pot::PotLaw;
+use crate::solver::{self, NewtonReport, PortEval, RootDevices};
+use crate::wdf::{
+    Capacitor, Parallel, RTypeRoot, ResistiveVoltageSource, Resistor, Series, Terminal, WaveElement,
+};
+
+// Root nodes (1-based; 0 is ground).
+const GAIN_GRID: usize = 1;
+const GAIN_CATHODE: usize = 2;
+const GAIN_PLATE: usize = 3;
+const FOLLOWER_CATHODE: usize = 4;
+const CLAMP_NODE: usize = 5;
+
+// Nonlinear ports and Newton unknowns.
+const GAIN_PLATE_PORT: usize = 0; // Vpk of the gain valve
+const GAIN_GRID_PORT: usize = 1; // Vgk of the gain valve
+const FOLLOWER_PLATE_PORT: usize = 2; // Vpk of the follower
+const FOLLOWER_GRID_PORT: usize = 3; // Vgk of the follower
+const ZENER_PORT: usize = 4; // pair, unknown s = asinh(I / CURRENT_SCALE)
+
+const PORTS: usize = 5;
+const MAX_ITERATIONS: u32 = 40;
+const DC_ITERATIONS: u32 = 500;
+
+/// Everything the stage knows after one sample, in volts and amps.
+#[derive(Clone, Copy, Debug, Default, PartialEq)]
+pub struct StageProbe {
+    /// The node the Zeners connect to (V).
+    pub clamp_volts: f64,
+    /// Level pot wiper, the stage's output (V).
+    pub wiper_volts: f64,
+    /// Current through the Zener pair, clamp node to ground (A).
+    pub zener_current: f64,
+    /// Voltage across the positive-clamp part, cathode to anode (V).
+    pub positive_part_volts: f64,
+    /// Voltage across the negative-clamp part, anode to cathode (V).
+    pub negative_part_volts: f64,
+    pub gain_grid_volts: f64,
+    pub gain_cathode_volts: f64,
+    pub gain_plate_volts: f64,
+    pub follower_cathode_volts: f64,
+    pub gain_plate_current: f64,
+    pub gain_grid_current: f64,
+    pub follower_plate_current: f64,
+    pub follower_grid_current: f64,
+}
+
+impl StageProbe {
+    /// Power in the positive-clamp part (W).
+    pub fn positive_part_watts(&self) -> f64 {
+        self.positive_part_volts * self.zener_current
+    }
+    /// Power in the negative-clamp part (W).
+    pub fn negative_part_watts(&self) -> f64 {
+        self.negative_part_volts * self.zener_current
+    }
+}
+
+/// The two valves and the selected Zener pair as the root sees them.
+#[derive(Clone, Debug)]
+struct StageDevices {
+    gain_valve: Triode,
+    follower_valve: Triode,
+    pairs: Vec<ZenerPair>,
+    active_pair: usize,
+    max_step: [f64; PORTS],
+    tolerance: [f64; PORTS],
+}
+
+impl RootDevices<PORTS> for StageDevices {
+    #[inline]
+    fn evaluate(&self, x: &[f64; PORTS], out: &mut PortEval<PORTS>) {
+        let gain = self
+            .gain_valve
+            .currents(x[GAIN_PLATE_PORT], x[GAIN_GRID_PORT]);
+        let follower = self
+            .follower_valve
+            .currents(x[FOLLOWER_PLATE_PORT], x[FOLLOWER_GRID_PORT]);
+        for (plate, grid, t) in [
+            (GAIN_PLATE_PORT, GAIN_GRID_PORT, gain),
+            (FOLLOWER_PLATE_PORT, FOLLOWER_GRID_PORT, follower),
+        ] {
+            out.volts[plate] = x[plate];
+            out.volts[grid] = x[grid];
+            out.volts_dx[plate][plate] = 1.0;
+            out.volts_dx[grid][grid] = 1.0;
+            out.current[plate] = t.plate;
+            out.current[grid] = t.grid;
+            out.current_dx[plate][plate] = t.plate_dvpk;
+            out.current_dx[plate][grid] = t.plate_dvgk;
+            out.current_dx[grid][grid] = t.grid_dvgk;
+        }
+        let pair = &self.pairs[self.active_pair];
+        if pair.is_open() {
+            // No parts: the unknown is the open port's voltage and no current flows.
+            out.volts[ZENER_PORT] = x[ZENER_PORT];
+            out.volts_dx[ZENER_PORT][ZENER_PORT] = 1.0;
+            out.current[ZENER_PORT] = 0.0;
+            out.current_dx[ZENER_PORT][ZENER_PORT] = 0.0;
+        } else {
+            let point = pair.at(x[ZENER_PORT]);
+            out.volts[ZENER_PORT] = point.volts;
+            out.volts_dx[ZENER_PORT][ZENER_PORT] = point.volts_ds;
+            out.current[ZENER_PORT] = point.current;
+            out.current_dx[ZENER_PORT][ZENER_PORT] = point.current_ds;
+        }
+    }
+    fn max_step(&self) -> &[f64; PORTS] {
+        &self.max_step
+    }
+    fn tolerance(&self) -> &[f64; PORTS] {
+        &self.tolerance
+    }
+}
+
+/// The modelled stage at one internal sample rate.
+#[derive(Clone, Debug)]
+pub struct Stage {
+    // Gain stage.
+    grid_feed: ResistiveVoltageSource,
+    cathode_network: Parallel<Resistor, Capacitor>,
+    plate_load: ResistiveVoltageSource,
+    // Cathode follower.
+    follower_load: Resistor,
+    // Clamp: coupling cap and feed resistor (plus the pot's top leg when the Zeners sit at the wiper) ...
+    coupling_feed: Series<Series<Capacitor, Resistor>, Resistor>,
+    // ... and from the clamp node: the pot's top leg (across-pot) then bottom leg in parallel with the load.
+    level_network: Series<Resistor, Parallel<Resistor, Resistor>>,
+    devices: StageDevices,
+    root: RTypeRoot<5, 6, PORTS>,
+    placement: Placement,
+    level_pot: f64,
+    level_law: PotLaw,
+    period: f64,
+    unknowns: [f64; PORTS],
+    eval: PortEval<PORTS>,
+    last_report: NewtonReport,
+    probe: StageProbe,
+}
+
+impl Stage {
+    /// Build the stage for `circuit` at internal sample rate `rate` (Hz), at its DC operating point.
+    /// Every switch position's Zener tables are built here, outside the audio path.
+    pub fn new(circuit: &Circuit, rate: f64, level: f64, position: usize) -> Stage {
+        let g = &circuit.gain_stage;
+        let c = &circuit.clamp;
+        let pairs = c
+            .position
+            .iter()
+            .map(|p| {
+                ZenerPair::new(
+                    p.positive.as_ref().map(|z| z.model()),
+                    p.negative.as_ref().map(|z| z.model()),
+                )
+            })
+            .collect();
+        let mut stage = Stage {
+            grid_feed: ResistiveVoltageSource::new(0.0, g.grid_stopper),
+            cathode_network: Parallel::new(
+                Resistor::new(g.cathode_resistor),
+                Capacitor::new(g.cathode_bypass),
+            ),
+            plate_load: ResistiveVoltageSource::new(circuit.supply_volts, g.plate_resistor),
+            follower_load: Resistor::new(circuit.follower.cathode_resistor),
+            coupling_feed: Series::new(
+                Series::new(Capacitor::new(c.coupling_cap), Resistor::new(c.feed_resistor)),
+                Resistor::new(0.0),
+            ),
+            level_network: Series::new(
+                Resistor::new(0.0),
+                Parallel::new(Resistor::new(c.level_pot), Resistor::new(c.load_resistor)),
+            ),
+            devices: StageDevices {
+                gain_valve: g.tube.triode(),
+                follower_valve: circuit.follower.tube.triode(),
+                pairs,
+                active_pair: position.min(c.position.len().saturating_sub(1)),
+                max_step: [50.0, 5.0, 50.0, 5.0, 4.0],
+                tolerance: [1e-7, 1e-8, 1e-7, 1e-8, 1e-8],
+            },
+            root: RTypeRoot::new(
+                [
+                    (GAIN_GRID, 0),
+                    (GAIN_CATHODE, 0),
+                    (GAIN_PLATE, 0),
+                    (FOLLOWER_CATHODE, 0),
+                    (FOLLOWER_CATHODE, CLAMP_NODE),
+                    (CLAMP_NODE, 0),
+                ],
+                [
+                    (Terminal::Node(GAIN_PLATE), Terminal::Node(GAIN_CATHODE)),
+                    (Terminal::Node(GAIN_GRID), Terminal::Node(GAIN_CATHODE)),
+                    (Terminal::Fixed(circuit.supply_volts), Terminal::Node(FOLLOWER_CATHODE)),
+                    (Terminal::Node(GAIN_PLATE), Terminal::Node(FOLLOWER_CATHODE)),
+                    (Terminal::Node(CLAMP_NODE), Terminal::Ground),
+                ],
+            ),
+            placement: c.placement,
+            level_pot: c.level_pot,
+            level_law: c.level_pot_law,
+            period: 1.0 / rate,
+            unknowns: [0.0; PORTS],
+            eval: PortEval::default(),
+            last_report: NewtonReport::default(),
+            probe: StageProbe::default(),
+        };
+        stage.set_level_legs(level);
+        stage.reset();
+        stage
+    }
+
+    fn set_level_legs(&mut self, level: f64) {
+        let (top, bottom) = self.level_law.legs(self.level_pot, level);
+        match self.placement {
+            Placement::AcrossPot => {
+                self.coupling_feed.second.set_resistance(0.0);
+                self.level_network.first.set_resistance(top);
+            }
+            Placement::AtWiper => {
+                self.coupling_feed.second.set_resistance(top);
+                self.level_network.first.set_resistance(0.0);
+            }
+        }
+        self.level_network.second.first.set_resistance(bottom);
+    }
+
+    fn edge_resistances(&self) -> [f64; 6] {
+        [
+            self.grid_feed.port_resistance(),
+            self.cathode_network.port_resistance(),
+            self.plate_load.port_resistance(),
+            self.follower_load.port_resistance(),
+            self.coupling_feed.port_resistance(),
+            self.level_network.port_resistance(),
+        ]
+    }
+
+    /// Turn the level pot (rotation 0..1); recomputes the root scattering, keeps every stored charge.
+    pub fn set_level(&mut self, level: f64) {
+        self.set_level_legs(level);
+        let r = self.edge_resistances();
+        self.root.update(&r);
+    }
+
+    /// Select the Zener pair of switch position `position` (clamped to the list).
+    pub fn set_position(&mut self, position: usize) {
+        let last = self.devices.pairs.len().saturating_sub(1);
+        self.devices.active_pair = position.min(last);
+        self.unknowns[ZENER_PORT] = 0.0;
+    }
+
+    /// Replace the pair at `position` (for example a freely set candidate). Builds tables: not real-time safe.
+    pub fn replace_pair(&mut self, position: usize, pair: ZenerPair) {
+        if position < self.devices.pairs.len() {
+            self.devices.pairs[position] = pair;
+        } else {
+            self.devices.pairs.push(pair);
+        }
+    }
+
+    /// The pair at `position`.
+    pub fn pair(&self, position: usize) -> Option<&ZenerPair> {
+        self.devices.pairs.get(position)
+    }
+
+    /// Index of the selected switch position.
+    pub fn position(&self) -> usize {
+        self.devices.active_pair
+    }
+
+    /// Settle at the DC operating point with silent input: capacitors open, Newton to convergence, then
+    /// each capacitor charged to its DC voltage so the first sample continues without a step.
+    pub fn reset(&mut self) {
+        self.grid_feed.volts = 0.0;
+        self.cathode_network.second.discretise(None);
+        self.coupling_feed.first.first.discretise(None);
+        let r = self.edge_resistances();
+        self.root.update(&r);
+        self.unknowns = [150.0, -1.5, 150.0, -1.0, 0.0];
+        self.step(DC_ITERATIONS);
+        let cathode_volts = self.cathode_network.second.voltage();
+        let coupling_volts = self.coupling_feed.first.first.voltage();
+        self.cathode_network.second.discretise(Some(self.period));
+        self.coupling_feed.first.first.discretise(Some(self.period));
+        self.cathode_network.second.charge_to(cathode_volts);
+        self.coupling_feed.first.first.charge_to(coupling_volts);
+        let r = self.edge_resistances();
+        self.root.update(&r);
+        // One silent sample in transient mode to settle every wave on the new discretisation.
+        self.step(DC_ITERATIONS);
+    }
+
+    /// Advance one internal sample with `grid_source_volts` at the gain pot's wiper.
+    #[inline]
+    pub fn process(&mut self, grid_source_volts: f64) -> &StageProbe {
+        self.grid_feed.volts = grid_source_volts;
+        self.step(MAX_ITERATIONS);
+        &self.probe
+    }
+
+    #[inline]
+    fn step(&mut self, max_iterations: u32) {
+        let b = [
+            self.grid_feed.reflected(),
+            self.cathode_network.reflected(),
+            self.plate_load.reflected(),
+            self.follower_load.reflected(),
+            self.coupling_feed.reflected(),
+            self.level_network.reflected(),
+        ];
+        let p = self.root.open_port_voltages(&b);
+        let seed = self.unknowns;
+        self.last_report = solver::solve(
+            &self.devices,
+            &self.root.port_from_current,
+            &p,
+            &mut self.unknowns,
+            &mut self.eval,
+            max_iterations,
+        );
+        if !self.unknowns.iter().all(|v| v.is_finite()) {
+            self.unknowns = seed;
+            self.devices.evaluate(&seed, &mut self.eval);
+        }
+        let currents = self.eval.current;
+        let nodes = self.root.node_voltages(&b, &currents);
+        let a = self.root.incident_waves(&b, &nodes);
+        self.grid_feed.incident(a[0]);
+        self.cathode_network.incident(a[1]);
+        self.plate_load.incident(a[2]);
+        self.follower_load.incident(a[3]);
+        self.coupling_feed.incident(a[4]);
+        self.level_network.incident(a[5]);
+        let pair = &self.devices.pairs[self.devices.active_pair];
+        let (positive_part_volts, negative_part_volts) = if pair.is_open() {
+            (0.0, 0.0)
+        } else {
+            let point = pair.at(self.unknowns[ZENER_PORT]);
+            (point.positive_part_volts, point.negative_part_volts)
+        };
+        self.probe = StageProbe {
+            clamp_volts: nodes[CLAMP_NODE - 1],
+            wiper_volts: self.level_network.second.voltage(),
+            zener_current: currents[ZENER_PORT],
+            positive_part_volts,
+            negative_part_volts,
+            gain_grid_volts: nodes[GAIN_GRID - 1],
+            gain_cathode_volts: nodes[GAIN_CATHODE - 1],
+            gain_plate_volts: nodes[GAIN_PLATE - 1],
+            follower_cathode_volts: nodes[FOLLOWER_CATHODE - 1],
+            gain_plate_current: currents[GAIN_PLATE_PORT],
+            gain_grid_current: currents[GAIN_GRID_PORT],
+            follower_plate_current: currents[FOLLOWER_PLATE_PORT],
+            follower_grid_current: currents[FOLLOWER_GRID_PORT],
+        };
+    }
+
+    /// The readouts of the last sample.
+    pub fn probe(&self) -> &StageProbe {
+        &self.probe
+    }
+
+    /// Newton iterations and convergence of the last sample.
+    pub fn last_report(&self) -> NewtonReport {
+        self.last_report
+    }
+
+    /// Current scale of the Zener unknown (A), for diagnostics.
+    pub fn zener_current_scale() -> f64 {
+        CURRENT_SCALE
+    }
+}

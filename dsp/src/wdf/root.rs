@@ -1,0 +1,235 @@
+/// One end of a root port: ground, one of the root's nodes (1-based), or a fixed voltage (an ideal supply).
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub enum Terminal {
+    Ground,
+    Node(usize),
+    Fixed(f64),
+}
+
+/// R-type adaptor at the root of the tree with the nonlinear ports attached (Werner, Smith, Abel, "Wave digital
+/// filter adaptors for arbitrary topologies and multiport linear elements", DAFx-15; K-method form of Werner et
+/// al., "Resolving wave digital filters with multiple/multiport nonlinearities", DAFx-15). Each subtree is a
+/// Thevenin edge (b_e, R_e) between two nodes; each nonlinear port draws current i_p from its + terminal. Nodal
+/// analysis at set-up gives the port voltages v = E b + K i + offset and the node voltages for the down pass.
+#[derive(Clone, Debug)]
+pub struct RTypeRoot<const N: usize, const E: usize, const P: usize> {
+    edges: [(usize, usize); E],
+    ports: [(Terminal, Terminal); P],
+    /// d(port voltage) / d(edge wave), E in the K-method.
+    pub port_from_wave: [[f64; E]; P],
+    /// d(port voltage) / d(port current), K in the K-method.
+    pub port_from_current: [[f64; P]; P],
+    /// Port voltage contributed by fixed terminals.
+    pub port_offset: [f64; P],
+    node_from_wave: [[f64; E]; N],
+    node_from_current: [[f64; P]; N],
+}
+
+impl<const N: usize, const E: usize, const P: usize> RTypeRoot<N, E, P> {
+    /// A root with `edges` given as (+ node, - node), 0 = ground, and the nonlinear `ports`.
+    pub fn new(edges: [(usize, usize); E], ports: [(Terminal, Terminal); P]) -> Self {
+        RTypeRoot {
+            edges,
+            ports,
+            port_from_wave: [[0.0; E]; P],
+            port_from_current: [[0.0; P]; P],
+            port_offset: [0.0; P],
+            node_from_wave: [[0.0; E]; N],
+            node_from_current: [[0.0; P]; N],
+        }
+    }
+
+    /// Recompute the scattering for new edge port resistances (no allocation; a few microseconds).
+    pub fn update(&mut self, resistances: &[f64; E]) {
+        let mut g = [[0.0f64; N]; N];
+        for (e, &(plus, minus)) in self.edges.iter().enumerate() {
+            let conductance = 1.0 / resistances[e];
+            for (x, sx) in [(plus, 1.0), (minus, -1.0)] {
+                for (y, sy) in [(plus, 1.0), (minus, -1.0)] {
+                    if x > 0 && y > 0 {
+                        g[x - 1][y - 1] += sx * sy * conductance;
+                    }
+                }
+            }
+        }
+        let inverse = invert(g);
+        // Node voltages per unit edge wave: injection b/R at + and -b/R at -.
+        for e in 0..E {
+            let (plus, minus) = self.edges[e];
+            let conductance = 1.0 / resistances[e];
+            for n in 0..N {
+                let mut sum = 0.0;
+                if plus > 0 {
+                    sum += inverse[n][plus - 1];
+                }
+                if minus > 0 {
+                    sum -= inverse[n][minus - 1];
+                }
+                self.node_from_wave[n][e] = sum * conductance;
+            }
+        }
+        // Node voltages per unit port current: drawn from the + node, returned to the - node.
+        for p in 0..P {
+            let (plus, minus) = self.ports[p];
+            for n in 0..N {
+                let mut sum = 0.0;
+                if let Terminal::Node(k) = plus {
+                    sum -= inverse[n][k - 1];
+                }
+                if let Terminal::Node(k) = minus {
+                    sum += inverse[n][k - 1];
+                }
+                self.node_from_current[n][p] = sum;
+            }
+        }
+        for p in 0..P {
+            let (plus, minus) = self.ports[p];
+            let mut offset = 0.0;
+            let mut wave = [0.0; E];
+            let mut current = [0.0; P];
+            for (terminal, sign) in [(plus, 1.0), (minus, -1.0)] {
+                match terminal {
+                    Terminal::Ground => {}
+                    Terminal::Fixed(v) => offset += sign * v,
+                    Terminal::Node(k) => {
+                        for e in 0..E {
+                            wave[e] += sign * self.node_from_wave[k - 1][e];
+                        }
+                        for q in 0..P {
+                            current[q] += sign * self.node_from_current[k - 1][q];
+                        }
+                    }
+                }
+            }
+            self.port_offset[p] = offset;
+            self.port_from_wave[p] = wave;
+            self.port_from_current[p] = current;
+        }
+    }
+
+    /// Open-circuit port voltages for the reflected waves `b` of the edges (the K-method's p vector).
+    #[inline]
+    pub fn open_port_voltages(&self, b: &[f64; E]) -> [f64; P] {
+        let mut p = self.port_offset;
+        for (row, out) in self.port_from_wave.iter().zip(p.iter_mut()) {
+            *out += row.iter().zip(b).map(|(m, w)| m * w).sum::<f64>();
+        }
+        p
+    }
+
+    /// Node voltages once the port currents are known.
+    #[inline]
+    pub fn node_voltages(&self, b: &[f64; E], currents: &[f64; P]) -> [f64; N] {
+        let mut x = [0.0; N];
+        for n in 0..N {
+            let mut sum = 0.0;
+            for e in 0..E {
+                sum += self.node_from_wave[n][e] * b[e];
+            }
+            for p in 0..P {
+                sum += self.node_from_current[n][p] * currents[p];
+            }
+            x[n] = sum;
+        }
+        x
+    }
+
+    /// Incident waves for the subtrees, a_e = 2 v_e - b_e.
+    #[inline]
+    pub fn incident_waves(&self, b: &[f64; E], nodes: &[f64; N]) -> [f64; E] {
+        let mut a = [0.0; E];
+        for e in 0..E {
+            let (plus, minus) = self.edges[e];
+            let vp = if plus > 0 { nodes[plus - 1] } else { 0.0 };
+            let vm = if minus > 0 { nodes[minus - 1] } else { 0.0 };
+            a[e] = 2.0 * (vp - vm) - b[e];
+        }
+        a
+    }
+}
+
+/// Gauss-Jordan inverse with partial pivoting of a small nonsingular matrix.
+fn invert<const N: usize>(mut m: [[f64; N]; N]) -> [[f64; N]; N] {
+    let mut inv = [[0.0; N]; N];
+    for (i, row) in inv.iter_mut().enumerate() {
+        row[i] = 1.0;
+    }
+    for col in 0..N {
+        let mut pivot = col;
+        for row in col + 1..N {
+            if m[row][col].abs() > m[pivot][col].abs() {
+                pivot = row;
+            }
+        }
+        m.swap(col, pivot);
+        inv.swap(col, pivot);
+        let d = 1.0 / m[col][col];
+        for k in 0..N {
+            m[col][k] *= d;
+            inv[col][k] *= d;
+        }
+        for row in 0..N {
+            if row != col {
+                let f = m[row][col];
+                if f != 0.0 {
+                    for k in 0..N {
+                        m[row][k] -= f * m[col][k];
+                        inv[row][k] -= f * inv[col][k];
+                    }
+                }
+            }
+        }
+    }
+    inv
+}
+
+/// Solve the small dense system `a x = r` in place by Gaussian elimination with partial pivoting.
+#[inline]
+pub fn solve_in_place<const P: usize>(a: &mut [[f64; P]; P], r: &mut [f64; P]) {
+    for col in 0..P {
+        let mut pivot = col;
+        for row in col + 1..P {
+            if a[row][col].abs() > a[pivot][col].abs() {
+                pivot = row;
+            }
+        }
+        if pivot != col {
+            a.swap(col, pivot);
+            r.swap(col, pivot);
+        }
+        let d = a[col][col];
+        let d = if d.abs() < 1e-300 { 1e-300 } else { d };
+        let inv = 1.0 / d;
+        for row in col + 1..P {
+            let f = a[row][col] * inv;
+            if f != 0.0 {
+                for k in col..P {
+                    a[row][k] -= f * a[col][k];
+                }
+                r[row] -= f * r[col];
+            }
+        }
+    }
+    for col in (0..P).rev() {
+        let mut sum = r[col];
+        for k in col + 1..P {
+            sum -= a[col][k] * r[k];
+        }
+        r[col] = sum / a[col][col];
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn divider_with_current_port() {
+        // Node 1 fed by a 10 V source through 1 k, 1 k to ground: open voltage 5 V, Thevenin 500 ohm.
+        let mut root = RTypeRoot::<1, 2, 1>::new([(1, 0), (1, 0)], [(Terminal::Node(1), Terminal::Ground)]);
+        root.update(&[1e3, 1e3]);
+        let p = root.open_port_voltages(&[10.0, 0.0]);
+        assert!((p[0] - 5.0).abs() < 1e-12);
+        assert!((root.port_from_current[0][0] + 500.0).abs() < 1e-9);
+    }
+}
