@@ -1,0 +1,1 @@
+//! Breakdown plugin (work in progress).

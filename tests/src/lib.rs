@@ -1,0 +1,1 @@
+//! Shared helpers for Breakdown's cross-crate and external-reference tests.

@@ -1,0 +1,3 @@
+fn main() -> nice_plug_xtask::Result<()> {
+    nice_plug_xtask::main()
+}
