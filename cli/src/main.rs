@@ -1,3 +1,65 @@
-fn main() {
-    println!("breakdown: work in progress");
+//! `breakdown`: render DI through a modelled Zener clamp stage, compare part choices, answer a builder's
+//! questions. Each subcommand lives in its own module.
+
+use clap::{Parser, Subcommand};
+use std::process::ExitCode;
+
+mod analysis;
+mod audio;
+mod bench;
+mod compare;
+mod demo;
+mod render;
+
+#[derive(Parser)]
+#[command(
+    name = "breakdown",
+    version,
+    about = "Hear a Zener clamp after a valve stage before you buy parts: a circuit model in real volts.",
+    after_help = "Safety: valve amplifiers run at several hundred volts and their filter capacitors stay \
+charged after power-off. The numbers this tool prints come from a simulation, not a measurement of a live \
+chassis. Work on a live amp only with the training to do so; drain and verify capacitors; follow local \
+electrical codes; when in doubt, have a qualified technician do the work."
+)]
+struct Cli {
+    #[command(subcommand)]
+    command: Command,
+}
+
+#[derive(Subcommand)]
+enum Command {
+    /// Render a WAV file through the stage (listening output or a node voltage in volts).
+    Render(render::RenderArgs),
+    /// Print speed figures: ns per sample and real-time factor per quality.
+    Bench(bench::BenchArgs),
+    /// Render DI files through several variants into clips and a report.
+    Compare(compare::CompareArgs),
+    /// Make the demo DI and run the demo plan into ./breakdown-demo/.
+    Demo(demo::DemoArgs),
+    /// Map which element limits first over gain and input level.
+    Onset(analysis::OnsetArgs),
+    /// Suggest buyable E24 Zener pairs for a goal.
+    Suggest(analysis::SuggestArgs),
+    /// Parts list with ratings for the switch layout.
+    Parts(analysis::PartsArgs),
+}
+
+fn main() -> ExitCode {
+    let cli = Cli::parse();
+    let result = match cli.command {
+        Command::Render(a) => render::run(a),
+        Command::Bench(a) => bench::run(a),
+        Command::Compare(a) => compare::run(a),
+        Command::Demo(a) => demo::run(a),
+        Command::Onset(a) => analysis::onset(a),
+        Command::Suggest(a) => analysis::suggest(a),
+        Command::Parts(a) => analysis::parts(a),
+    };
+    match result {
+        Ok(()) => ExitCode::SUCCESS,
+        Err(message) => {
+            eprintln!("breakdown: {message}");
+            ExitCode::FAILURE
+        }
+    }
 }

@@ -1,0 +1,1 @@
+//! WAV reading and writing (being written).
