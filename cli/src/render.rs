@@ -1,8 +1,271 @@
-//! `breakdown render` (being written).
+//! `breakdown render`: a WAV file through the stage, writing the listening output or a node voltage in volts.
+//!
+//! Each channel gets its own engine (a stereo DI is two amps), rendered in parallel threads. The output is
+//! latency-compensated: output sample n lines up with input sample n.
+
+use crate::audio::{self, Audio};
+use breakdown_dsp::{Circuit, Engine, Probe, Quality, Settings};
+use std::io::IsTerminal;
+use std::path::{Path, PathBuf};
+use std::sync::atomic::{AtomicU64, Ordering};
+use std::time::Duration;
+
+/// Lowest and highest host rates the model runs at (Hz).
+pub const MIN_RATE: u32 = 22_050;
+pub const MAX_RATE: u32 = 384_000;
+/// Host samples processed between progress updates.
+const CHUNK: usize = 8192;
+/// Show a progress bar only when the render takes this many internal steps or more (a second or so).
+const PROGRESS_MIN_STEPS: usize = 8_000_000;
 
 #[derive(clap::Args)]
-pub struct RenderArgs {}
+pub struct RenderArgs {
+    /// Circuit file (TOML, BRIEF section 5 keys); the built-in reference circuit when left out.
+    #[arg(long, value_name = "FILE")]
+    pub circuit: Option<PathBuf>,
+    /// Input WAV (16/24/32-bit integer or 32-bit float, mono or stereo, 22.05 to 384 kHz).
+    #[arg(long, value_name = "IN.wav")]
+    pub input: PathBuf,
+    /// Output WAV (32-bit float).
+    #[arg(long, value_name = "OUT.wav")]
+    pub output: PathBuf,
+    /// A setting as name=value: gain=0..1, level=0..1, position=index into the circuit's switch list.
+    /// Repeat for several.
+    #[arg(long = "set", value_name = "NAME=VALUE")]
+    pub set: Vec<String>,
+    /// Write a node voltage in volts (1.0 = 1 V) instead of the listening output: clamp or wiper.
+    #[arg(long, value_name = "clamp|wiper")]
+    pub probe: Option<String>,
+    /// Oversampling factor: 1, 2, 4, 8 or 16.
+    #[arg(long, value_name = "1|2|4|8|16", default_value = "4")]
+    pub quality: String,
+}
 
-pub fn run(_args: RenderArgs) -> Result<(), String> {
-    Err("'render' is not written yet".into())
+/// Everything `render` needs, checked: the parsed form of the arguments.
+pub struct Job {
+    pub circuit: Circuit,
+    pub settings: Settings,
+    pub probe: Probe,
+    pub quality: Quality,
+}
+
+/// Quality from "1", "2", "4", "8" or "16" (an "x" in front is accepted).
+pub fn parse_quality(text: &str) -> Result<Quality, String> {
+    let t = text.trim();
+    let t = t.strip_prefix(['x', 'X']).unwrap_or(t);
+    t.parse::<usize>()
+        .ok()
+        .and_then(Quality::from_factor)
+        .ok_or_else(|| {
+            format!("--quality {text}: expected an oversampling factor of 1, 2, 4, 8 or 16")
+        })
+}
+
+/// Probe from "clamp" or "wiper"; `None` is the listening output.
+pub fn parse_probe(text: Option<&str>) -> Result<Probe, String> {
+    match text.map(|t| t.trim().to_ascii_lowercase()) {
+        None => Ok(Probe::Listen),
+        Some(t) if t == "clamp" => Ok(Probe::Clamp),
+        Some(t) if t == "wiper" => Ok(Probe::Wiper),
+        Some(t) => Err(format!("--probe {t}: unknown probe (known: clamp, wiper)")),
+    }
+}
+
+/// Fold a multi-line parser message into one line.
+fn one_line(message: &str) -> String {
+    let lines: Vec<&str> = message
+        .lines()
+        .map(str::trim)
+        .filter(|l| !l.is_empty() && !l.starts_with('|') && !l.contains(" | "))
+        .collect();
+    lines.join(": ")
+}
+
+/// Read and validate a circuit file, or the built-in reference circuit.
+pub fn load_circuit(path: Option<&Path>) -> Result<Circuit, String> {
+    let Some(path) = path else {
+        return Ok(Circuit::reference());
+    };
+    let shown = path.display();
+    let text = std::fs::read_to_string(path).map_err(|e| {
+        let reason = match e.kind() {
+            std::io::ErrorKind::NotFound => "No such file".to_string(),
+            std::io::ErrorKind::InvalidData => "not a text file".to_string(),
+            _ => e.to_string(),
+        };
+        format!("cannot open circuit file '{shown}': {reason}")
+    })?;
+    Circuit::from_toml(&text).map_err(|e| {
+        let message = one_line(&e.0);
+        let message = message.strip_prefix("circuit file: ").unwrap_or(&message);
+        format!("circuit file '{shown}': {message}")
+    })
+}
+
+/// Check every argument (circuit, settings, probe, quality) before any audio is read.
+pub fn prepare(args: &RenderArgs) -> Result<Job, String> {
+    let quality = parse_quality(&args.quality)?;
+    let probe = parse_probe(args.probe.as_deref())?;
+    let circuit = load_circuit(args.circuit.as_deref())?;
+    let mut settings = Settings::default();
+    for s in &args.set {
+        settings.set(s).map_err(|e| e.0)?;
+    }
+    circuit
+        .check_position(settings.position)
+        .map_err(|e| format!("--set position: {}", e.0))?;
+    Ok(Job {
+        circuit,
+        settings,
+        probe,
+        quality,
+    })
+}
+
+/// Fail early (before a long render) when the output cannot be written there.
+fn check_output(output: &Path, input: &Path) -> Result<(), String> {
+    let shown = output.display();
+    if output.is_dir() {
+        return Err(format!("cannot write '{shown}': it is a folder"));
+    }
+    if output.file_name().is_none() {
+        return Err(format!("cannot write '{shown}': not a file name"));
+    }
+    if let Some(folder) = output.parent().filter(|p| !p.as_os_str().is_empty()) {
+        if !folder.is_dir() {
+            return Err(format!(
+                "cannot write '{shown}': the folder '{}' does not exist",
+                folder.display()
+            ));
+        }
+    }
+    if let (Ok(a), Ok(b)) = (output.canonicalize(), input.canonicalize()) {
+        if a == b {
+            return Err(format!(
+                "'{shown}' is the input file: choose another output name"
+            ));
+        }
+    }
+    Ok(())
+}
+
+/// Render every channel through its own engine, in parallel, latency removed. `progress` counts host samples
+/// done over all channels.
+pub fn render_channels(
+    job: &Job,
+    audio: &Audio,
+    progress: &AtomicU64,
+) -> Result<Vec<Vec<f32>>, String> {
+    let rate = audio.rate as f64;
+    let mut engines = Vec::with_capacity(audio.channels.len());
+    for _ in &audio.channels {
+        engines.push(Engine::new(&job.circuit, rate, job.quality, job.settings).map_err(|e| e.0)?);
+    }
+    let outputs = std::thread::scope(|scope| {
+        let handles: Vec<_> = engines
+            .into_iter()
+            .zip(&audio.channels)
+            .map(|(mut engine, input)| {
+                scope.spawn(move || render_one(&mut engine, input, job.probe, progress))
+            })
+            .collect();
+        handles
+            .into_iter()
+            .map(|h| {
+                h.join()
+                    .map_err(|_| "internal error: a render thread stopped".to_string())
+            })
+            .collect::<Result<Vec<_>, _>>()
+    })?;
+    Ok(outputs)
+}
+
+/// One channel, latency removed: output[n] lines up with input[n] (as `Engine::render` does, in chunks).
+fn render_one(engine: &mut Engine, input: &[f32], probe: Probe, progress: &AtomicU64) -> Vec<f32> {
+    let latency = engine.latency();
+    let mut padded = Vec::with_capacity(input.len() + latency);
+    padded.extend_from_slice(input);
+    padded.resize(input.len() + latency, 0.0);
+    let mut out = vec![0.0f32; padded.len()];
+    for (x, y) in padded.chunks(CHUNK).zip(out.chunks_mut(CHUNK)) {
+        engine.process_block(x, y, probe);
+        progress.fetch_add(x.len() as u64, Ordering::Relaxed);
+    }
+    out.drain(..latency);
+    out
+}
+
+pub fn run(args: RenderArgs) -> Result<(), String> {
+    let job = prepare(&args)?;
+    check_output(&args.output, &args.input)?;
+    let input = audio::read_wav(&args.input)?;
+    if !(MIN_RATE..=MAX_RATE).contains(&input.rate) {
+        return Err(format!(
+            "'{}' is at {} Hz; Breakdown renders from {MIN_RATE} to {MAX_RATE} Hz",
+            args.input.display(),
+            input.rate
+        ));
+    }
+    let frames = input.frames();
+    let total = (frames * input.channels.len()) as u64;
+    let steps = frames * input.channels.len() * job.quality.factor();
+    let bar = if std::io::stderr().is_terminal() && steps >= PROGRESS_MIN_STEPS {
+        let bar = indicatif::ProgressBar::new(total);
+        bar.set_style(
+            indicatif::ProgressStyle::with_template(
+                "rendering {wide_bar} {percent:>3}%  {elapsed_precise} (about {eta} left)",
+            )
+            .unwrap_or_else(|_| indicatif::ProgressStyle::default_bar()),
+        );
+        Some(bar)
+    } else {
+        None
+    };
+    let progress = AtomicU64::new(0);
+    let outputs = std::thread::scope(|scope| {
+        let worker = scope.spawn(|| render_channels(&job, &input, &progress));
+        while !worker.is_finished() {
+            if let Some(bar) = &bar {
+                bar.set_position(progress.load(Ordering::Relaxed));
+            }
+            std::thread::sleep(Duration::from_millis(50));
+        }
+        worker
+            .join()
+            .map_err(|_| "internal error: the render stopped".to_string())
+    })??;
+    if let Some(bar) = &bar {
+        bar.finish_and_clear();
+    }
+    let result = Audio {
+        rate: input.rate,
+        channels: outputs,
+    };
+    audio::write_wav_f32(&args.output, &result)?;
+    let peak = result
+        .channels
+        .iter()
+        .flatten()
+        .fold(0.0f32, |m, v| m.max(v.abs()));
+    let what = match job.probe {
+        Probe::Clamp => format!("clamp node volts, peak {peak:.2} V"),
+        Probe::Wiper => format!("wiper volts, peak {peak:.2} V"),
+        _ => format!(
+            "listening output, peak {:.1} dBFS",
+            20.0 * (peak.max(1e-10)).log10()
+        ),
+    };
+    let position = &job.circuit.clamp.position[job.settings.position].name;
+    println!(
+        "wrote '{}': {} channel(s), {:.2} s at {} Hz, {what}; gain {}, level {}, position {} ({position}), quality {}x",
+        args.output.display(),
+        result.channels.len(),
+        input.seconds(),
+        input.rate,
+        job.settings.gain,
+        job.settings.level,
+        job.settings.position,
+        job.quality.factor(),
+    );
+    Ok(())
 }
