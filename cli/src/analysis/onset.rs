@@ -1,0 +1,532 @@
+//! Which element limits first: a map over gain (pot rotation) and input level (peak volts at the jack).
+//!
+//! Each cell renders a short tone burst and reads the engine's meters over its steady part. An element
+//! "limits" when it takes away a noticeable part of the small-signal gain at the signal's peak. The criteria,
+//! each from the device equations the model uses (BRIEF section 4):
+//!
+//! * **Zener clamp**: the pair carries more than [`CLAMPED_CURRENT`] (10 uA) at any instant, the same test the
+//!   engine's "share of time clamped" meter uses. Physically: a Zener in its knee has an incremental
+//!   resistance near nbv Vt / I; for the fitted 1N4747A (20 V, nbv about 7.2) that is about 19 kohm at 10 uA,
+//!   some 3.5 times the source resistance feeding the clamp node (4.7 kohm feed plus the follower's output
+//!   resistance), so the pair already takes about a fifth of the incremental gain at the peak.
+//! * **Gain valve, grid current**: the peak grid current exceeds its idle value by the current at which the
+//!   grid's incremental resistance 1 / (dIg/dVgk) (Dempwolf-Zoelzer grid law) falls to four times the grid
+//!   stopper. The stopper and grid then form a divider that takes a fifth of the incremental gain at the peak,
+//!   matching the Zener test above. For the 68 kohm reference stopper this is about 0.28 uA above idle, with
+//!   the grid near 0.35 V below its cathode ([`grid_current_threshold`] solves it for any stopper).
+//! * **Gain valve, cut-off**: the plate current falls below 2% of its idle value at some instant. With the
+//!   Koren law Ip ~ E1^ex the transconductance scales as Ip^((ex-1)/ex); at 2% of idle it is about a third of
+//!   its idle value (12AX7, ex = 1.4) and collapses to zero within a fraction of a volt more grid drive.
+//! * **Cathode follower, cut-off**: the follower's plate current falls below 2% of its idle value: it can no
+//!   longer sink the load current on the down-swing (BRIEF section 2), the same 2% edge as above.
+//!
+//! Which element limits "first" in a cell: of the elements active in that cell, the one that became active
+//! at the lowest input level at that gain (scanning the row from the quietest cell up); ties in the same cell
+//! go to the one listed first above.
+
+use super::common::{lin_space, log_space, parallel, run_with, Outcome, Rig, Stimulus};
+use breakdown_dsp::devices::Triode;
+use breakdown_dsp::engine::CLAMPED_CURRENT;
+use breakdown_dsp::StageProbe;
+
+/// Fraction of idle plate current below which a valve counts as cut off.
+pub const CUTOFF_FRACTION: f64 = 0.02;
+/// The grid's incremental resistance at the grid-current limit, as a multiple of the grid stopper.
+pub const GRID_RESISTANCE_RATIO: f64 = 4.0;
+
+/// Grid current (A) at which the Dempwolf-Zoelzer grid's incremental resistance falls to
+/// `GRID_RESISTANCE_RATIO` times `stopper` ohms, and the grid-to-cathode voltage there. Solved by bisection on
+/// Vgk (the slope rises monotonically with Vgk).
+pub fn grid_current_threshold(stopper: f64) -> (f64, f64) {
+    let target_slope = 1.0 / (GRID_RESISTANCE_RATIO * stopper);
+    let (mut lo, mut hi) = (-5.0, 2.0);
+    for _ in 0..200 {
+        let mid = 0.5 * (lo + hi);
+        if Triode::grid_current(mid).1 < target_slope {
+            lo = mid;
+        } else {
+            hi = mid;
+        }
+    }
+    let v = 0.5 * (lo + hi);
+    (Triode::grid_current(v).0, v)
+}
+
+/// The element that limits in a cell.
+#[derive(Clone, Copy, Debug, PartialEq, Eq, Hash)]
+pub enum Limiter {
+    Clean,
+    Zener,
+    GainGrid,
+    GainCutoff,
+    FollowerCutoff,
+}
+
+impl Limiter {
+    pub const ALL: [Limiter; 5] = [
+        Limiter::Clean,
+        Limiter::Zener,
+        Limiter::GainGrid,
+        Limiter::GainCutoff,
+        Limiter::FollowerCutoff,
+    ];
+    pub fn label(self) -> &'static str {
+        match self {
+            Limiter::Clean => "clean",
+            Limiter::Zener => "Zener clamp",
+            Limiter::GainGrid => "gain valve grid current",
+            Limiter::GainCutoff => "gain valve cut-off",
+            Limiter::FollowerCutoff => "cathode follower cut-off",
+        }
+    }
+    pub fn code(self) -> &'static str {
+        match self {
+            Limiter::Clean => "clean",
+            Limiter::Zener => "zener",
+            Limiter::GainGrid => "gain-grid",
+            Limiter::GainCutoff => "gain-cutoff",
+            Limiter::FollowerCutoff => "follower-cutoff",
+        }
+    }
+    fn letter(self) -> &'static str {
+        match self {
+            Limiter::Clean => "",
+            Limiter::Zener => "Z",
+            Limiter::GainGrid => "G",
+            Limiter::GainCutoff => "C",
+            Limiter::FollowerCutoff => "F",
+        }
+    }
+}
+
+/// Thresholds of the criteria for one circuit at its operating point.
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub struct Criteria {
+    /// Pair current (A).
+    pub zener_current: f64,
+    /// Absolute gain-valve grid current (A): idle plus the stopper-derived rise.
+    pub gain_grid_current: f64,
+    /// Gain valve plate current (A) below which it is cut off.
+    pub gain_cutoff_current: f64,
+    /// Follower plate current (A) below which it is cut off.
+    pub follower_cutoff_current: f64,
+}
+
+impl Criteria {
+    pub fn new(grid_stopper: f64, idle: &StageProbe) -> Criteria {
+        let (at_threshold, _) = grid_current_threshold(grid_stopper);
+        let (at_idle, _) = Triode::grid_current(idle.gain_grid_volts - idle.gain_cathode_volts);
+        Criteria {
+            zener_current: CLAMPED_CURRENT,
+            gain_grid_current: idle.gain_grid_current + (at_threshold - at_idle).max(0.0),
+            gain_cutoff_current: CUTOFF_FRACTION * idle.gain_plate_current,
+            follower_cutoff_current: CUTOFF_FRACTION * idle.follower_plate_current,
+        }
+    }
+}
+
+/// Which elements are active in one render.
+#[derive(Clone, Copy, Debug, Default, PartialEq, Eq)]
+pub struct Flags {
+    pub zener: bool,
+    pub gain_grid: bool,
+    pub gain_cutoff: bool,
+    pub follower_cutoff: bool,
+}
+
+impl Flags {
+    pub fn of(outcome: &Outcome, criteria: &Criteria) -> Flags {
+        let m = &outcome.meters;
+        Flags {
+            zener: m.zener_peak_current > criteria.zener_current,
+            gain_grid: m.gain_grid_current_peak > criteria.gain_grid_current,
+            gain_cutoff: m.gain_plate_current_min < criteria.gain_cutoff_current,
+            follower_cutoff: m.follower_plate_current_min < criteria.follower_cutoff_current,
+        }
+    }
+    pub fn has(&self, l: Limiter) -> bool {
+        match l {
+            Limiter::Clean => !self.any(),
+            Limiter::Zener => self.zener,
+            Limiter::GainGrid => self.gain_grid,
+            Limiter::GainCutoff => self.gain_cutoff,
+            Limiter::FollowerCutoff => self.follower_cutoff,
+        }
+    }
+    pub fn any(&self) -> bool {
+        self.zener || self.gain_grid || self.gain_cutoff || self.follower_cutoff
+    }
+    pub fn any_valve(&self) -> bool {
+        self.gain_grid || self.gain_cutoff || self.follower_cutoff
+    }
+    /// Active elements in criteria order.
+    pub fn active(&self) -> Vec<Limiter> {
+        Limiter::ALL[1..]
+            .iter()
+            .copied()
+            .filter(|l| self.has(*l))
+            .collect()
+    }
+}
+
+/// One cell of the map.
+#[derive(Clone, Debug)]
+pub struct Cell {
+    pub gain: f64,
+    pub input_volts: f64,
+    pub flags: Flags,
+    pub limiter: Limiter,
+    pub clamp_peak_positive: f64,
+    pub clamp_peak_negative: f64,
+    pub share_clamped: f64,
+    pub zener_peak_current: f64,
+    pub gain_grid_current_peak: f64,
+    pub gain_plate_current_min: f64,
+    pub follower_plate_current_min: f64,
+}
+
+/// The onset map: `cells[g][l]` for gains[g] and levels[l].
+#[derive(Clone, Debug)]
+pub struct OnsetMap {
+    pub gains: Vec<f64>,
+    pub levels: Vec<f64>,
+    pub cells: Vec<Vec<Cell>>,
+    pub criteria: Criteria,
+    pub tone_hz: f64,
+}
+
+/// Sweep parameters.
+#[derive(Clone, Debug)]
+pub struct Sweep {
+    pub gains: Vec<f64>,
+    pub levels: Vec<f64>,
+    pub tone_hz: f64,
+}
+
+impl Sweep {
+    /// Gain 0.1..1 in `gain_steps`, input 0.02..2 V peak log-spaced in `level_steps`.
+    pub fn standard(gain_steps: usize, level_steps: usize, tone_hz: f64) -> Sweep {
+        Sweep {
+            gains: lin_space(0.1, 1.0, gain_steps),
+            levels: log_space(0.02, 2.0, level_steps),
+            tone_hz,
+        }
+    }
+}
+
+/// The criteria for `rig` (from its idle operating point).
+pub fn criteria_for(rig: &Rig) -> Result<Criteria, String> {
+    let engine = rig.engine()?;
+    Ok(Criteria::new(
+        rig.circuit.gain_stage.grid_stopper,
+        engine.stage().probe(),
+    ))
+}
+
+/// Render one cell: `rig` at `gain` with a burst of `input_volts` peak.
+pub fn measure_cell(
+    rig: &Rig,
+    gain: f64,
+    input_volts: f64,
+    tone_hz: f64,
+) -> Result<Outcome, String> {
+    let mut engine = rig.with_gain(gain).engine()?;
+    Ok(run_with(
+        &mut engine,
+        &Stimulus::burst(input_volts, tone_hz),
+    ))
+}
+
+fn cell_of(gain: f64, input_volts: f64, o: &Outcome, c: &Criteria) -> Cell {
+    let m = &o.meters;
+    Cell {
+        gain,
+        input_volts,
+        flags: Flags::of(o, c),
+        limiter: Limiter::Clean,
+        clamp_peak_positive: m.clamp_peak_positive,
+        clamp_peak_negative: m.clamp_peak_negative,
+        share_clamped: m.share_clamped(),
+        zener_peak_current: m.zener_peak_current,
+        gain_grid_current_peak: m.gain_grid_current_peak,
+        gain_plate_current_min: m.gain_plate_current_min,
+        follower_plate_current_min: m.follower_plate_current_min,
+    }
+}
+
+/// Name the first limiter along each gain row (see the module text).
+fn assign_first(row: &mut [Cell]) {
+    let mut onset: Vec<(Limiter, usize)> = Vec::new();
+    for (i, cell) in row.iter().enumerate() {
+        for l in cell.flags.active() {
+            if !onset.iter().any(|(k, _)| *k == l) {
+                onset.push((l, i));
+            }
+        }
+    }
+    for cell in row.iter_mut() {
+        cell.limiter = onset
+            .iter()
+            .filter(|(l, _)| cell.flags.has(*l))
+            .min_by_key(|(l, i)| (*i, Limiter::ALL.iter().position(|k| k == l)))
+            .map(|(l, _)| *l)
+            .unwrap_or(Limiter::Clean);
+    }
+}
+
+/// Sweep the map over two threads (one engine per gain row, reset between cells).
+pub fn map(rig: &Rig, sweep: &Sweep) -> Result<OnsetMap, String> {
+    let criteria = criteria_for(rig)?;
+    let rows = parallel(sweep.gains.clone(), |gain| -> Result<Vec<Cell>, String> {
+        let mut engine = rig.with_gain(gain).engine()?;
+        Ok(sweep
+            .levels
+            .iter()
+            .map(|&v| {
+                let o = run_with(&mut engine, &Stimulus::burst(v, sweep.tone_hz));
+                cell_of(gain, v, &o, &criteria)
+            })
+            .collect())
+    });
+    let mut cells = Vec::with_capacity(rows.len());
+    for r in rows {
+        let mut row = r?;
+        assign_first(&mut row);
+        cells.push(row);
+    }
+    Ok(OnsetMap {
+        gains: sweep.gains.clone(),
+        levels: sweep.levels.clone(),
+        cells,
+        criteria,
+        tone_hz: sweep.tone_hz,
+    })
+}
+
+/// Lowest input level (peak V at the jack, between `low` and `high`) at which `test` holds, by bisection on
+/// a log scale to 0.5%; None when it does not hold even at `high`. Assumes `test` turns on once with level.
+pub fn onset_level(
+    rig: &Rig,
+    tone_hz: f64,
+    low: f64,
+    high: f64,
+    test: impl Fn(&Flags) -> bool,
+) -> Result<Option<f64>, String> {
+    let criteria = criteria_for(rig)?;
+    let mut engine = rig.engine()?;
+    let mut holds = |v: f64| {
+        test(&Flags::of(
+            &run_with(&mut engine, &Stimulus::burst(v, tone_hz)),
+            &criteria,
+        ))
+    };
+    if !holds(high) {
+        return Ok(None);
+    }
+    if holds(low) {
+        return Ok(Some(low));
+    }
+    let (mut lo, mut hi) = (low, high);
+    while hi / lo > 1.005 {
+        let mid = (lo * hi).sqrt();
+        if holds(mid) {
+            hi = mid;
+        } else {
+            lo = mid;
+        }
+    }
+    Ok(Some(hi))
+}
+
+/// Onset level of each element at the rig's own gain (None: not reached up to `high`).
+pub fn onsets_at_gain(
+    rig: &Rig,
+    tone_hz: f64,
+    high: f64,
+) -> Result<Vec<(Limiter, Option<f64>)>, String> {
+    let elements: Vec<Limiter> = Limiter::ALL[1..].to_vec();
+    let results = parallel(elements.clone(), |l| {
+        onset_level(rig, tone_hz, 1e-3, high, move |f| f.has(l))
+    });
+    elements
+        .into_iter()
+        .zip(results)
+        .map(|(l, r)| r.map(|v| (l, v)))
+        .collect()
+}
+
+/// CSV of the map: one line per cell with every readout.
+pub fn to_csv(m: &OnsetMap) -> String {
+    let mut s = String::from(
+        "gain,input_peak_volts,limiter,active,clamp_peak_positive_volts,clamp_peak_negative_volts,\
+share_clamped,zener_peak_current_amps,gain_grid_current_peak_amps,gain_plate_current_min_amps,\
+follower_plate_current_min_amps\n",
+    );
+    for row in &m.cells {
+        for c in row {
+            let active: Vec<&str> = c.flags.active().iter().map(|l| l.code()).collect();
+            s.push_str(&format!(
+                "{:.3},{:.5},{},{},{:.4},{:.4},{:.5},{:.4e},{:.4e},{:.4e},{:.4e}\n",
+                c.gain,
+                c.input_volts,
+                c.limiter.code(),
+                active.join("+"),
+                c.clamp_peak_positive,
+                c.clamp_peak_negative,
+                c.share_clamped,
+                c.zener_peak_current,
+                c.gain_grid_current_peak,
+                c.gain_plate_current_min,
+                c.follower_plate_current_min
+            ));
+        }
+    }
+    s
+}
+
+fn colour(l: Limiter) -> plotters::style::RGBColor {
+    use plotters::style::RGBColor;
+    match l {
+        Limiter::Clean => RGBColor(236, 236, 236),
+        Limiter::Zener => RGBColor(66, 133, 214),
+        Limiter::GainGrid => RGBColor(240, 160, 40),
+        Limiter::GainCutoff => RGBColor(200, 50, 40),
+        Limiter::FollowerCutoff => RGBColor(130, 70, 170),
+    }
+}
+
+/// Heat map as SVG text: colour = first limiter, letters = every active element.
+pub fn to_svg(m: &OnsetMap, title: &str) -> Result<String, String> {
+    use plotters::prelude::*;
+    let mut text = String::new();
+    {
+        let root = SVGBackend::with_string(&mut text, (900, 600)).into_drawing_area();
+        root.fill(&WHITE).map_err(|e| e.to_string())?;
+        let (plot_area, legend_area) = root.split_horizontally(700);
+        let nx = m.levels.len();
+        let ny = m.gains.len();
+        let levels = m.levels.clone();
+        let gains = m.gains.clone();
+        let mut chart = ChartBuilder::on(&plot_area)
+            .caption(title, ("sans-serif", 16))
+            .margin(10)
+            .x_label_area_size(45)
+            .y_label_area_size(55)
+            .build_cartesian_2d(0f64..nx as f64, 0f64..ny as f64)
+            .map_err(|e| e.to_string())?;
+        chart
+            .configure_mesh()
+            .disable_mesh()
+            .x_desc("input level, peak volts at the jack")
+            .y_desc("gain pot rotation")
+            .x_labels(nx.min(8))
+            .y_labels(ny.min(10))
+            .x_label_formatter(&|x| {
+                let i = (x.floor() as usize).min(levels.len() - 1);
+                format!("{:.3}", levels[i])
+            })
+            .y_label_formatter(&|y| {
+                let i = (y.floor() as usize).min(gains.len() - 1);
+                format!("{:.2}", gains[i])
+            })
+            .draw()
+            .map_err(|e| e.to_string())?;
+        for (gi, row) in m.cells.iter().enumerate() {
+            for (li, c) in row.iter().enumerate() {
+                let (x0, y0) = (li as f64, gi as f64);
+                chart
+                    .draw_series(std::iter::once(Rectangle::new(
+                        [(x0, y0), (x0 + 1.0, y0 + 1.0)],
+                        colour(c.limiter).filled(),
+                    )))
+                    .map_err(|e| e.to_string())?;
+                let letters: String = c.flags.active().iter().map(|l| l.letter()).collect();
+                if !letters.is_empty() {
+                    chart
+                        .draw_series(std::iter::once(Text::new(
+                            letters,
+                            (x0 + 0.3, y0 + 0.65),
+                            ("sans-serif", 11).into_font().color(&WHITE),
+                        )))
+                        .map_err(|e| e.to_string())?;
+                }
+            }
+        }
+        for (k, l) in Limiter::ALL.iter().enumerate() {
+            let y = 60 + 30 * k as i32;
+            legend_area
+                .draw(&Rectangle::new(
+                    [(10, y), (30, y + 20)],
+                    colour(*l).filled(),
+                ))
+                .map_err(|e| e.to_string())?;
+            legend_area
+                .draw(&Text::new(
+                    format!("{} {}", l.letter(), l.label()),
+                    (36, y + 4),
+                    ("sans-serif", 12),
+                ))
+                .map_err(|e| e.to_string())?;
+        }
+        legend_area
+            .draw(&Text::new(
+                format!("{:.0} Hz tone bursts", m.tone_hz),
+                (10, 230),
+                ("sans-serif", 12),
+            ))
+            .map_err(|e| e.to_string())?;
+        root.present().map_err(|e| e.to_string())?;
+    }
+    Ok(text)
+}
+
+/// One-line summary: where the Zeners start to conduct at the rig's gain, and what limits first.
+pub fn summary(rig: &Rig, onsets: &[(Limiter, Option<f64>)]) -> String {
+    let first = onsets
+        .iter()
+        .filter_map(|(l, v)| v.map(|v| (*l, v)))
+        .min_by(|a, b| a.1.total_cmp(&b.1));
+    let zener = onsets
+        .iter()
+        .find(|(l, _)| *l == Limiter::Zener)
+        .and_then(|(_, v)| *v);
+    let (positive, negative) = rig.pair_specs();
+    let head = if positive.is_none() && negative.is_none() {
+        "No Zeners at this switch position".to_string()
+    } else {
+        match zener {
+            Some(v) => format!(
+                "The Zeners start to conduct at {v:.3} V peak at the jack: the clamp cleans up below {v:.3} V"
+            ),
+            None => "The Zeners do not conduct up to 100 V peak at the jack".to_string(),
+        }
+    };
+    match first {
+        Some((l, v)) => format!(
+            "{head}; first to limit as the level rises: {} (at {v:.3} V).",
+            l.label()
+        ),
+        None => format!("{head}; nothing limits up to 100 V peak."),
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn grid_threshold_slope_matches_stopper_ratio() {
+        // Dempwolf and Zoelzer, DAFx-11 grid law: check the solved point by a finite difference of Ig.
+        let (ig, v) = grid_current_threshold(68e3);
+        let h = 1e-6;
+        let slope = (Triode::grid_current(v + h).0 - Triode::grid_current(v - h).0) / (2.0 * h);
+        assert!((slope * 4.0 * 68e3 - 1.0).abs() < 1e-3, "slope {slope}");
+        // In the exponential region Ig - Ig0 ~ slope / (xi Cg) with xi 1.314, Cg 9.901 (same paper).
+        let approx = 1.0 / (4.0 * 68e3 * 1.314 * 9.901) + 8.025e-8;
+        assert!(
+            (ig - approx).abs() / approx < 0.1,
+            "ig {ig} approx {approx}"
+        );
+        assert!(v < 0.0);
+    }
+}
