@@ -1,0 +1,403 @@
+#!/usr/bin/env python3
+"""Regenerate Breakdown's ngspice reference data (Python 3.11+ standard library, plus ngspice on PATH).
+
+For every case directory under references/ (one holding case.toml and circuit.toml):
+  1. read circuit.toml (the dsp crate's circuit-file format, BRIEF section 5) and case.toml (input signal and
+     settings); circuit.toml is the single source of truth for every part value;
+  2. write netlist.cir: the same stage with the device equations of BRIEF section 4 as behavioural sources
+     (Koren plate current, Dempwolf-Zoelzer grid current, exponential-breakdown Zener with series resistance),
+     exactly as ../shared/reference.cir does;
+  3. run `ngspice -b` (trapezoidal rule, tight tolerances, output interpolated on a grid of 1/(48000 k) s,
+     internal step at most a eighth of that);
+  4. band-limit the fine ngspice output with a zero-phase Kaiser-windowed sinc low-pass (cut-off 22 kHz) and keep
+     every k-th sample: reference.csv holds time, clamp node volts and wiper volts on the 48 kHz grid.
+     Picking every k-th row without the low-pass would fold the clamp's harmonics above 33 kHz onto the
+     harmonics below 15 kHz that the comparison keeps.
+
+Usage: python3 references/gen.py [--out DIR] [--cases NAME,NAME] [--jobs N] [--oversample K]
+With --out, netlists and data go to DIR/<case>/ instead of beside the case files (the cross-check test uses
+this to compare a fresh run with the committed data).
+"""
+
+import argparse
+import concurrent.futures
+import math
+import os
+import re
+import shutil
+import subprocess
+import sys
+import tempfile
+import time
+import tomllib
+
+HERE = os.path.dirname(os.path.abspath(__file__))
+PARTS_RS = os.path.join(HERE, "..", "dsp", "src", "parts.rs")
+
+BASE_RATE = 48000.0
+# Default ratio of the ngspice output grid to the 48 kHz grid: TSTEP = 1/(48000*16) s (768 kHz), and the
+# internal step is limited to TSTEP/8 (about 6 MHz).
+DEFAULT_OVERSAMPLE = 16
+MAX_STEP_DIVISOR = 8
+# Decimation low-pass: Kaiser-windowed sinc (J. F. Kaiser, ISCAS 1974), half length in base-rate samples.
+LOWPASS_CUTOFF_HZ = 22000.0
+LOWPASS_HALF_SPAN_BASE = 20
+LOWPASS_BETA = 10.0
+# Extra simulated time after the last kept sample, so the low-pass sees real data at the end (s).
+TAIL_SECONDS = 0.0006
+
+# Thermal voltage used by the Zener fit and model (BRIEF section 4).
+VT = 0.025852
+
+# Koren 1996 parameter sets (BRIEF section 4): mu, ex, kg1, kp, kvb.
+TUBES = {
+    "12AX7": (100.0, 1.4, 1060.0, 600.0, 300.0),
+    "12AT7": (60.0, 1.35, 460.0, 300.0, 300.0),
+    "12AU7": (21.5, 1.3, 1180.0, 84.0, 300.0),
+}
+
+# Smallest resistance of either pot leg (ohm), as dsp/src/pot.rs POT_END_RESISTANCE.
+POT_END_RESISTANCE = 1.0
+
+
+class CaseError(Exception):
+    pass
+
+
+def pot_fraction(law, x):
+    """Share of the track below the wiper: linear y = x, log y = (81^x - 1)/80 (BRIEF section 3)."""
+    x = min(max(x, 0.0), 1.0)
+    if law == "linear":
+        return x
+    if law == "log":
+        return (81.0 ** x - 1.0) / 80.0
+    raise CaseError(f"unknown pot law '{law}' (expected 'log' or 'linear')")
+
+
+def pot_legs(law, total, x):
+    y = pot_fraction(law, x)
+    return max(total * (1.0 - y), POT_END_RESISTANCE), max(total * y, POT_END_RESISTANCE)
+
+
+def family_table():
+    """1N47xxA rows (volts -> (izt, zzt, izk, zzk) in A and ohm) as typed in dsp/src/parts.rs."""
+    rows = {}
+    with open(PARTS_RS, encoding="utf-8") as f:
+        text = f.read()
+    pattern = re.compile(r'"(1N47\d\dA)"\s+([0-9.]+)\s+([0-9.]+)\s+([0-9.]+)\s+([0-9.]+)\s+([0-9.]+)\s*;')
+    for m in pattern.finditer(text):
+        v, izt, zzt, izk, zzk = (float(g) for g in m.groups()[1:])
+        rows[v] = (izt * 1e-3, zzt, izk * 1e-3, zzk)
+    if len(rows) < 30:
+        raise CaseError(f"could not read the 1N47xxA table from {PARTS_RS}")
+    return rows
+
+
+def zener_fit(spec, table, what):
+    """Fit of BRIEF section 4: nbv = (Zzk - Zzt)/(Vt (1/Izk - 1/Izt)), rs = Zzt - nbv Vt/Izt; rs < 0 -> rs = 0,
+    nbv = Zzk Izk / Vt; Vzj = Vz - Izt rs."""
+    volts = float(spec["volts"])
+    keys = ("izt", "zzt", "izk", "zzk")
+    given = [k for k in keys if k in spec]
+    if len(given) == 4:
+        izt, zzt, izk, zzk = (float(spec[k]) for k in keys)
+    elif not given:
+        row = next((r for v, r in table.items() if abs(v - volts) < 1e-6), None)
+        if row is None:
+            raise CaseError(f"{what}: {volts} V is not a 1N47xxA row; give izt, zzt, izk, zzk explicitly")
+        izt, zzt, izk, zzk = row
+    else:
+        raise CaseError(f"{what}: give all four knee figures (izt, zzt, izk, zzk) or none")
+    nbv = (zzk - zzt) / (VT * (1.0 / izk - 1.0 / izt))
+    rs = zzt - nbv * VT / izt
+    if rs < 0.0:
+        rs = 0.0
+        nbv = zzk * izk / VT
+    return {"volts": volts, "izt": izt, "nbv": nbv, "rs": rs, "vzj": volts - izt * rs}
+
+
+NETLIST_HEAD = """\
+* Reference netlist for cross-checking Breakdown's stage model with ngspice (generated by references/gen.py
+* from circuit.toml and case.toml in this directory; do not edit by hand).
+* Device equations of BRIEF section 4, as behavioural sources: Koren 1996 plate current, Dempwolf-Zoelzer
+* (DAFx-11) grid current, exponential-breakdown Zener with series resistance fitted to datasheet knee data.
+* Numerical notes (none of these changes a device current anywhere in the physical range):
+* - ln(1+exp(x)) is written as the overflow-free softplus: x + ln(1+exp(-x)) for x > 0 (same value and slope).
+* - Zener exponentials continue linearly (C1) beyond a junction forward voltage of 1.0 V and a breakdown
+*   exponent of 12, as the model does; the circuits here stay far inside those limits.
+* - the breakdown term has its zero-bias value subtracted, so the junction passes no current at 0 V.
+* - a 1e12 ohm GMIN-style resistor across each Zener junction, as SPICE puts across every pn junction.
+.param vt={vt}
+.param gg=6.177e-4 xi=1.314 cg=9.901 ig0=8.025e-8
+.param vfx=1.0 abx=12
+.func softplus(x) {{x > 0 ? x + ln(1 + exp(-x)) : ln(1 + exp(x))}}
+.subckt triode p g k mu=100 ex=1.4 kg1=1060 kp=600 kvb=300
+Bp p k I = {{ V(p,k) > 0 ? 2*pwr(V(p,k)/kp*softplus(kp*(1/mu + V(g,k)/sqrt(kvb + V(p,k)*V(p,k)))), ex)/kg1 : 0 }}
+Bg g k I = {{ gg*pwr(softplus(cg*V(g,k))/cg, xi) + ig0 }}
+.ends
+* zener: anode a, cathode c. Junction (a->j) with forward Shockley and exponential breakdown, then series rs (j->c)
+.subckt zener a c vzj=20 izt=12.5m nbv=7 rs=7
+Bj a j I = {{ 1e-14*(V(a,j) < vfx ? exp(V(a,j)/vt) - 1 : exp(vfx/vt)*(1 + (V(a,j) - vfx)/vt) - 1)
++ - izt*(-(V(a,j) + vzj)/(nbv*vt) < abx ? exp(-(V(a,j) + vzj)/(nbv*vt)) : exp(abx)*(1 - (V(a,j) + vzj)/(nbv*vt) - abx)) + izt*exp(-vzj/(nbv*vt)) }}
+Rgmin a j 1e12
+Rz j c {{rs}}
+.ends
+* the same part with rs = 0 (ngspice would silently turn a 0 ohm resistor into 1 mohm)
+.subckt zener0 a c vzj=20 izt=12.5m nbv=7
+Bj a c I = {{ 1e-14*(V(a,c) < vfx ? exp(V(a,c)/vt) - 1 : exp(vfx/vt)*(1 + (V(a,c) - vfx)/vt) - 1)
++ - izt*(-(V(a,c) + vzj)/(nbv*vt) < abx ? exp(-(V(a,c) + vzj)/(nbv*vt)) : exp(abx)*(1 - (V(a,c) + vzj)/(nbv*vt) - abx)) + izt*exp(-vzj/(nbv*vt)) }}
+Rgmin a c 1e12
+.ends
+"""
+
+
+def r(x):
+    """Full-precision number for the netlist."""
+    return repr(float(x))
+
+
+def zener_line(name, anode, cathode, z):
+    if z["rs"] > 0.0:
+        return (f"{name} {anode} {cathode} zener vzj={r(z['vzj'])} izt={r(z['izt'])} nbv={r(z['nbv'])} "
+                f"rs={r(z['rs'])}")
+    return f"{name} {anode} {cathode} zener0 vzj={r(z['vzj'])} izt={r(z['izt'])} nbv={r(z['nbv'])}"
+
+
+def need(table, key, what):
+    if key not in table:
+        raise CaseError(f"{what}: missing key '{key}'")
+    return table[key]
+
+
+def build_netlist(name, circuit, case, table, oversample, raw_name):
+    """Netlist text, the clamp node's name and the number of 48 kHz samples to keep."""
+    signal = need(case, "signal", "case.toml")
+    settings = need(case, "settings", "case.toml")
+    amplitude = float(need(signal, "amplitude_volts", "case.toml [signal]"))
+    frequency = float(need(signal, "frequency", "case.toml [signal]"))
+    duration = float(need(signal, "duration", "case.toml [signal]"))
+    gain = float(need(settings, "gain", "case.toml [settings]"))
+    level = float(need(settings, "level", "case.toml [settings]"))
+    position = int(need(settings, "position", "case.toml [settings]"))
+
+    supply = float(need(circuit, "supply_volts", "circuit.toml"))
+    g = need(circuit, "gain_stage", "circuit.toml")
+    fo = need(circuit, "follower", "circuit.toml")
+    c = need(circuit, "clamp", "circuit.toml")
+    positions = c.get("position", [])
+    if not 0 <= position < len(positions):
+        raise CaseError(f"{name}: position {position} is past the switch list ({len(positions)} positions)")
+    sw = positions[position]
+    for tube in (g["tube"], fo["tube"]):
+        if tube not in TUBES:
+            raise CaseError(f"{name}: unknown tube '{tube}' (known: {', '.join(TUBES)})")
+
+    attenuation = pot_fraction(g["gain_pot_law"], gain)
+    top, bottom = pot_legs(c["level_pot_law"], float(c["level_pot"]), level)
+    placement = c["placement"]
+    if placement not in ("across-pot", "at-wiper"):
+        raise CaseError(f"{name}: placement '{placement}' (expected 'across-pot' or 'at-wiper')")
+
+    tstep = 1.0 / (BASE_RATE * oversample)
+    samples = int(round(duration * BASE_RATE))
+    # Stop on the output grid, a little after the last kept sample (the low-pass needs the tail).
+    tstop = (oversample * (samples - 1) + math.ceil(TAIL_SECONDS * BASE_RATE * oversample)) * tstep
+
+    def triode(label, p, gr, k, tube):
+        mu, ex, kg1, kp, kvb = TUBES[tube]
+        return f"{label} {p} {gr} {k} triode mu={r(mu)} ex={r(ex)} kg1={r(kg1)} kp={r(kp)} kvb={r(kvb)}"
+
+    lines = [NETLIST_HEAD.format(vt=VT)]
+    lines.append(f"* case '{name}': {case.get('description', '')}")
+    lines.append(f"* switch position {position} '{sw.get('name', '')}', gain {gain} ({g['gain_pot_law']} law, "
+                 f"attenuation {attenuation!r}), level {level} ({c['level_pot_law']} law), placement {placement}")
+    lines.append(f"* input: {amplitude} V peak, {frequency} Hz sine at the jack, starting at t = 0")
+    lines.append(f"VBP bplus 0 DC {r(supply)}")
+    lines.append(f"VIN in 0 DC 0 SIN(0 {r(amplitude)} {r(frequency)} 0 0 0)")
+    lines.append("* gain pot as an ideal attenuator (voltage-controlled source)")
+    lines.append(f"EG gs 0 in 0 {r(attenuation)}")
+    lines.append(f"RGS gs g1 {r(g['grid_stopper'])}")
+    lines.append(triode("X1", "p1", "g1", "k1", g["tube"]))
+    lines.append(f"RP1 bplus p1 {r(g['plate_resistor'])}")
+    lines.append(f"RK1 k1 0 {r(g['cathode_resistor'])}")
+    if float(g["cathode_bypass"]) > 0.0:
+        lines.append(f"CK1 k1 0 {r(g['cathode_bypass'])}")
+    else:
+        lines.append("* cathode unbypassed (cathode_bypass = 0)")
+    lines.append(triode("X2", "bplus", "p1", "k2", fo["tube"]))
+    lines.append(f"RK2 k2 0 {r(fo['cathode_resistor'])}")
+    lines.append(f"CC k2 c1 {r(c['coupling_cap'])}")
+    # Level pot: top leg from its top to the wiper w, bottom leg from w to ground. The Zeners sit at the top
+    # ("across-pot") or at the wiper ("at-wiper"); either way the clamp node is where they connect.
+    clamp = "top" if placement == "across-pot" else "w"
+    lines.append(f"RS c1 top {r(c['feed_resistor'])}")
+    lines.append(f"RPA top w {r(top)}")
+    lines.append(f"RPB w 0 {r(bottom)}")
+    lines.append(f"RL w 0 {r(c['load_resistor'])}")
+    pos = sw.get("positive")
+    neg = sw.get("negative")
+    zp = zener_fit(pos, table, f"{name} positive part") if pos else None
+    zn = zener_fit(neg, table, f"{name} negative part") if neg else None
+    for label, z in (("positive", zp), ("negative", zn)):
+        if z:
+            lines.append(f"* {label} part: {z['volts']} V, Izt {z['izt']} A -> nbv {z['nbv']!r}, rs {z['rs']!r} ohm")
+    if zp and zn:
+        lines.append(zener_line("XZP", "m", clamp, zp))
+        lines.append(zener_line("XZN", "m", "0", zn))
+    elif zp:
+        lines.append(zener_line("XZP", "0", clamp, zp))
+    elif zn:
+        lines.append(zener_line("XZN", clamp, "0", zn))
+    else:
+        lines.append("* switch position with no parts: clamp node left open")
+    lines.append(f"* trapezoidal rule, internal step at most TSTEP/{MAX_STEP_DIVISOR}; interp writes the output on "
+                 f"the exact TSTEP grid (1/{int(BASE_RATE * oversample)} s)")
+    lines.append(".options method=trap reltol=1e-06 abstol=1e-12 vntol=1e-8 chgtol=1e-16 trtol=1 itl4=50 interp")
+    lines.append(f".tran {r(tstep)} {r(tstop)} 0 {r(tstep / MAX_STEP_DIVISOR)}")
+    lines.append(".control")
+    lines.append("set numdgt=15")
+    lines.append("set wr_singlescale")
+    lines.append("run")
+    lines.append(f"wrdata {raw_name} v({clamp}) v(w)")
+    lines.append("quit")
+    lines.append(".endc")
+    lines.append(".end")
+    return "\n".join(lines) + "\n", samples
+
+
+def bessel_i0(x):
+    total, term, half = 1.0, 1.0, x / 2.0
+    for k in range(1, 200):
+        term *= (half / k) ** 2
+        total += term
+        if term < 1e-17 * total:
+            break
+    return total
+
+
+def lowpass_taps(oversample):
+    """Zero-phase Kaiser-windowed sinc at the fine rate, unity DC gain; 2 M + 1 taps, M = 20 k."""
+    m_half = LOWPASS_HALF_SPAN_BASE * oversample
+    fc = LOWPASS_CUTOFF_HZ / (BASE_RATE * oversample)
+    norm = bessel_i0(LOWPASS_BETA)
+    taps = []
+    for n in range(-m_half, m_half + 1):
+        sinc = 2.0 * fc if n == 0 else math.sin(2.0 * math.pi * fc * n) / (math.pi * n)
+        w = bessel_i0(LOWPASS_BETA * math.sqrt(max(0.0, 1.0 - (n / m_half) ** 2))) / norm
+        taps.append(sinc * w)
+    s = sum(taps)
+    return [t / s for t in taps]
+
+
+def read_wrdata(path, tstep):
+    rows = []
+    with open(path, encoding="utf-8") as f:
+        for line in f:
+            parts = line.split()
+            if len(parts) < 3:
+                continue
+            try:
+                rows.append([float(p) for p in parts[:3]])
+            except ValueError:
+                continue
+    if not rows:
+        raise CaseError(f"{path}: ngspice wrote no data")
+    # interp puts every row on the TSTEP grid; check it.
+    for i in (0, len(rows) // 2, len(rows) - 1):
+        if abs(rows[i][0] - i * tstep) > 1e-3 * tstep:
+            raise CaseError(f"{path}: row {i} at t = {rows[i][0]} is not on the {tstep} s grid")
+    return rows
+
+
+def decimate(values, oversample, samples, taps):
+    """Low-pass and keep every oversample-th value; before t = 0 the circuit rests at its operating point."""
+    m_half = (len(taps) - 1) // 2
+    last = len(values) - 1
+    if oversample * (samples - 1) + m_half > last:
+        raise CaseError("ngspice output ends before the low-pass tail")
+    first = values[0]
+    out = []
+    for n in range(samples):
+        centre = n * oversample
+        acc = 0.0
+        base = centre - m_half
+        for j, t in enumerate(taps):
+            i = base + j
+            acc += t * (values[i] if i >= 0 else first)
+        out.append(acc)
+    return out
+
+
+def run_case(name, out_root, oversample, ngspice):
+    case_dir = os.path.join(HERE, name)
+    with open(os.path.join(case_dir, "circuit.toml"), "rb") as f:
+        circuit = tomllib.load(f)
+    with open(os.path.join(case_dir, "case.toml"), "rb") as f:
+        case = tomllib.load(f)
+    table = family_table()
+    dest = os.path.join(out_root, name)
+    os.makedirs(dest, exist_ok=True)
+    started = time.monotonic()
+    with tempfile.TemporaryDirectory(prefix=f"breakdown-ngspice-{name}-") as work:
+        raw = os.path.join(work, "raw.txt")
+        netlist, samples = build_netlist(name, circuit, case, table, oversample, "raw.txt")
+        with open(os.path.join(dest, "netlist.cir"), "w", encoding="utf-8") as f:
+            f.write(netlist)
+        with open(os.path.join(work, "netlist.cir"), "w", encoding="utf-8") as f:
+            f.write(netlist)
+        proc = subprocess.run([ngspice, "-b", "netlist.cir"], cwd=work, capture_output=True, text=True)
+        if proc.returncode != 0 or not os.path.exists(raw):
+            tail = "\n".join((proc.stdout + proc.stderr).splitlines()[-20:])
+            raise CaseError(f"{name}: ngspice failed (exit {proc.returncode}):\n{tail}")
+        rows = read_wrdata(raw, 1.0 / (BASE_RATE * oversample))
+    taps = lowpass_taps(oversample)
+    clamp = decimate([row[1] for row in rows], oversample, samples, taps)
+    wiper = decimate([row[2] for row in rows], oversample, samples, taps)
+    with open(os.path.join(dest, "reference.csv"), "w", encoding="utf-8") as f:
+        f.write("# ngspice reference (references/gen.py): clamp node and wiper volts, band-limited to 22 kHz, "
+                "48 kHz grid\n")
+        f.write("time,clamp,wiper\n")
+        for n in range(samples):
+            f.write(f"{n / BASE_RATE:.9e},{clamp[n]:.9e},{wiper[n]:.9e}\n")
+    return name, time.monotonic() - started, max(clamp), min(clamp)
+
+
+def main():
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--out", default=HERE, help="directory for <case>/netlist.cir and <case>/reference.csv")
+    ap.add_argument("--cases", default="", help="comma-separated case names (default: every case)")
+    ap.add_argument("--jobs", type=int, default=2, help="ngspice runs in parallel (default 2)")
+    ap.add_argument("--oversample", type=int, default=DEFAULT_OVERSAMPLE,
+                    help="ngspice output grid = 1/(48000 K) s (default 16)")
+    args = ap.parse_args()
+    ngspice = shutil.which("ngspice")
+    if ngspice is None:
+        print("gen.py: ngspice is not on PATH (Debian: apt-get install ngspice)", file=sys.stderr)
+        return 2
+    if args.oversample < 1:
+        print("gen.py: --oversample must be at least 1", file=sys.stderr)
+        return 2
+    all_cases = sorted(d for d in os.listdir(HERE)
+                       if os.path.isfile(os.path.join(HERE, d, "case.toml")))
+    cases = [c for c in args.cases.split(",") if c] or all_cases
+    unknown = [c for c in cases if c not in all_cases]
+    if unknown:
+        print(f"gen.py: unknown case(s) {', '.join(unknown)} (known: {', '.join(all_cases)})", file=sys.stderr)
+        return 2
+    started = time.monotonic()
+    failed = False
+    with concurrent.futures.ThreadPoolExecutor(max_workers=max(1, args.jobs)) as pool:
+        futures = [pool.submit(run_case, c, args.out, args.oversample, ngspice) for c in cases]
+        for fut in futures:
+            try:
+                name, seconds, hi, lo = fut.result()
+                print(f"{name:24s} {seconds:6.1f} s   clamp node {lo:+8.3f} .. {hi:+8.3f} V")
+            except (CaseError, OSError, tomllib.TOMLDecodeError, KeyError, ValueError) as e:
+                print(f"gen.py: {e}", file=sys.stderr)
+                failed = True
+    print(f"total {time.monotonic() - started:.1f} s")
+    return 1 if failed else 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())

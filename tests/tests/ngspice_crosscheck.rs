@@ -1,0 +1,360 @@
+//! Cross-check of the model against ngspice (the Debian `ngspice` package, an independent circuit simulator).
+//!
+//! For every case under `references/` (see references/README.md) the committed `reference.csv` holds the clamp
+//! node and wiper voltages ngspice computed for the same circuit (`circuit.toml`, turned into `netlist.cir` by
+//! `references/gen.py` with the device equations of BRIEF section 4 as behavioural sources), at a fine fixed step
+//! and band-limited onto the 48 kHz grid. This test feeds the same sine (`case.toml`) to `breakdown_dsp::Engine`
+//! at 48 kHz and the default quality (4x), band-limits both signals to 15 kHz, aligns them by the best fractional
+//! lag and requires a normalised RMS error (RMS of the difference / RMS of the ngspice signal) of at most 1%.
+//!
+//! The data is committed, so this runs without ngspice. With `BREAKDOWN_REGENERATE=1` and ngspice on PATH, the
+//! second test reruns gen.py into a temporary directory and checks the fresh ngspice output matches the
+//! committed data.
+
+use breakdown_dsp::{Circuit, Engine, Probe, Quality, Settings};
+use realfft::num_complex::Complex;
+use realfft::RealFftPlanner;
+use serde::Deserialize;
+use std::path::{Path, PathBuf};
+
+const SAMPLE_RATE: f64 = 48_000.0;
+/// Both signals are compared below this frequency (issue 2: "band-limiting both signals to 15 kHz").
+const BAND_LIMIT_HZ: f64 = 15_000.0;
+/// Largest accepted normalised RMS error against ngspice (issue 2: "at most 1%").
+const MAX_ERROR: f64 = 0.01;
+/// Lags searched for the alignment (base-rate samples either way).
+const MAX_LAG: f64 = 3.0;
+
+#[derive(Deserialize)]
+struct CaseFile {
+    description: String,
+    signal: Signal,
+    settings: Settings,
+    compare: Compare,
+}
+
+#[derive(Deserialize)]
+struct Signal {
+    /// Peak volts at the input jack.
+    amplitude_volts: f64,
+    /// Hz.
+    frequency: f64,
+    /// s.
+    duration: f64,
+}
+
+#[derive(Deserialize)]
+struct Compare {
+    /// Start-up time left out of the comparison (s).
+    skip: f64,
+}
+
+struct Case {
+    name: String,
+    dir: PathBuf,
+    file: CaseFile,
+    circuit: Circuit,
+}
+
+fn references_dir() -> PathBuf {
+    Path::new(env!("CARGO_MANIFEST_DIR")).join("../references")
+}
+
+fn load_cases() -> Vec<Case> {
+    let root = references_dir();
+    let mut cases = Vec::new();
+    let mut entries: Vec<PathBuf> = std::fs::read_dir(&root)
+        .unwrap_or_else(|e| panic!("cannot read {}: {e}", root.display()))
+        .filter_map(|e| e.ok().map(|e| e.path()))
+        .filter(|p| p.join("case.toml").is_file())
+        .collect();
+    entries.sort();
+    for dir in entries {
+        let name = dir.file_name().unwrap().to_string_lossy().into_owned();
+        let read = |file: &str| {
+            std::fs::read_to_string(dir.join(file)).unwrap_or_else(|e| panic!("{name}/{file}: {e}"))
+        };
+        let file: CaseFile =
+            toml::from_str(&read("case.toml")).unwrap_or_else(|e| panic!("{name}/case.toml: {e}"));
+        let circuit = Circuit::from_toml(&read("circuit.toml"))
+            .unwrap_or_else(|e| panic!("{name}/circuit.toml: {e}"));
+        cases.push(Case {
+            name,
+            dir,
+            file,
+            circuit,
+        });
+    }
+    cases
+}
+
+/// Columns of a reference.csv: (clamp volts, wiper volts), one row per 48 kHz sample.
+fn read_reference(path: &Path) -> (Vec<f64>, Vec<f64>) {
+    let text = std::fs::read_to_string(path)
+        .unwrap_or_else(|e| panic!("{}: {e} (run python3 references/gen.py)", path.display()));
+    let mut clamp = Vec::new();
+    let mut wiper = Vec::new();
+    for (index, line) in text.lines().enumerate() {
+        if line.starts_with('#') || line.starts_with("time") || line.trim().is_empty() {
+            continue;
+        }
+        let fields: Vec<f64> = line
+            .split(',')
+            .map(|f| {
+                f.trim().parse().unwrap_or_else(|_| {
+                    panic!("{} line {}: bad number '{f}'", path.display(), index + 1)
+                })
+            })
+            .collect();
+        assert_eq!(fields.len(), 3, "{} line {}", path.display(), index + 1);
+        let expected_time = clamp.len() as f64 / SAMPLE_RATE;
+        assert!(
+            (fields[0] - expected_time).abs() < 1e-9,
+            "{} line {}: time {} is not on the 48 kHz grid",
+            path.display(),
+            index + 1,
+            fields[0]
+        );
+        clamp.push(fields[1]);
+        wiper.push(fields[2]);
+    }
+    (clamp, wiper)
+}
+
+/// The case's sine at the jack as 48 kHz samples in full-scale units.
+fn input_signal(case: &Case, samples: usize) -> Vec<f32> {
+    let s = &case.file.signal;
+    let scale = s.amplitude_volts / case.circuit.drive.volts_at_full_scale;
+    (0..samples)
+        .map(|n| {
+            let t = n as f64 / SAMPLE_RATE;
+            (scale * (2.0 * std::f64::consts::PI * s.frequency * t).sin()) as f32
+        })
+        .collect()
+}
+
+fn render(case: &Case, input: &[f32], probe: Probe) -> Vec<f64> {
+    let mut engine = Engine::new(&case.circuit, SAMPLE_RATE, Quality::X4, case.file.settings)
+        .unwrap_or_else(|e| panic!("{}: {e}", case.name));
+    engine
+        .render(input, probe)
+        .into_iter()
+        .map(f64::from)
+        .collect()
+}
+
+/// Outcome of one comparison.
+struct Comparison {
+    /// Normalised RMS error after band-limiting and alignment.
+    error: f64,
+    /// Normalised RMS error with no lag.
+    error_unaligned: f64,
+    /// Best lag of the model against the reference (samples; positive = model late).
+    lag: f64,
+    reference_peak: (f64, f64),
+    model_peak: (f64, f64),
+}
+
+/// Band-limit both signals to BAND_LIMIT_HZ (brick wall on the FFT of a segment of whole signal periods),
+/// then find the fractional lag that minimises the RMS difference, searched on the spectra (Parseval).
+fn compare(model: &[f64], reference: &[f64], start: usize, period: usize) -> Comparison {
+    let available = reference.len().min(model.len()) - start;
+    let len = if period > 0 && available >= period {
+        available / period * period
+    } else {
+        available
+    };
+    let segment = |x: &[f64]| x[start..start + len].to_vec();
+    let mut planner = RealFftPlanner::<f64>::new();
+    let fft = planner.plan_fft_forward(len);
+    let spectrum = |mut x: Vec<f64>| {
+        let mut out = fft.make_output_vec();
+        fft.process(&mut x, &mut out).expect("fft");
+        out
+    };
+    let m = spectrum(segment(model));
+    let r = spectrum(segment(reference));
+    let top_bin = ((BAND_LIMIT_HZ * len as f64 / SAMPLE_RATE).floor() as usize).min(m.len() - 1);
+    // Parseval weight of each real-FFT bin: DC (and Nyquist, if kept) once, the others twice.
+    let weight = |k: usize| if k == 0 || 2 * k == len { 1.0 } else { 2.0 };
+    let reference_energy: f64 = (0..=top_bin).map(|k| weight(k) * r[k].norm_sqr()).sum();
+    let error_at = |lag: f64| -> f64 {
+        let mut sum = 0.0;
+        for k in 0..=top_bin {
+            let phase = -2.0 * std::f64::consts::PI * k as f64 * -lag / len as f64;
+            let shifted = m[k] * Complex::from_polar(1.0, phase);
+            sum += weight(k) * (shifted - r[k]).norm_sqr();
+        }
+        (sum / reference_energy).sqrt()
+    };
+    // Coarse grid, then golden-section refinement around the best point.
+    let mut best = 0.0;
+    let mut best_error = error_at(0.0);
+    let steps = (MAX_LAG * 100.0) as i32;
+    for i in -steps..=steps {
+        let lag = i as f64 / 100.0;
+        let e = error_at(lag);
+        if e < best_error {
+            best = lag;
+            best_error = e;
+        }
+    }
+    let (mut a, mut b) = (best - 0.01, best + 0.01);
+    let g = (5f64.sqrt() - 1.0) / 2.0;
+    for _ in 0..40 {
+        let c = b - g * (b - a);
+        let d = a + g * (b - a);
+        if error_at(c) < error_at(d) {
+            b = d;
+        } else {
+            a = c;
+        }
+    }
+    let lag = 0.5 * (a + b);
+    let peaks = |x: &[f64]| {
+        let s = &x[start..start + len];
+        (
+            s.iter().cloned().fold(f64::NEG_INFINITY, f64::max),
+            s.iter().cloned().fold(f64::INFINITY, f64::min),
+        )
+    };
+    Comparison {
+        error: error_at(lag).min(best_error),
+        error_unaligned: error_at(0.0),
+        lag,
+        reference_peak: peaks(reference),
+        model_peak: peaks(model),
+    }
+}
+
+#[test]
+fn model_matches_ngspice_at_default_quality() {
+    let cases = load_cases();
+    assert!(
+        cases.len() >= 6,
+        "issue 2 asks for at least six ngspice cases, found {}",
+        cases.len()
+    );
+    println!(
+        "model (48 kHz, quality 4x) against ngspice, both band-limited to {} kHz",
+        BAND_LIMIT_HZ / 1e3
+    );
+    println!(
+        "{:<16} {:>6} {:>9} {:>9} {:>9}   {:>17} {:>17}   description",
+        "case", "probe", "error %", "no-lag %", "lag smp", "ngspice peaks V", "model peaks V"
+    );
+    let mut failures = Vec::new();
+    for case in &cases {
+        let (ref_clamp, ref_wiper) = read_reference(&case.dir.join("reference.csv"));
+        let samples = (case.file.signal.duration * SAMPLE_RATE).round() as usize;
+        assert_eq!(
+            ref_clamp.len(),
+            samples,
+            "{}: reference.csv length does not match case.toml's duration (rerun references/gen.py)",
+            case.name
+        );
+        let input = input_signal(case, samples);
+        let start = (case.file.compare.skip * SAMPLE_RATE).round() as usize;
+        let period_samples = SAMPLE_RATE / case.file.signal.frequency;
+        let period = if (period_samples - period_samples.round()).abs() < 1e-9 {
+            period_samples.round() as usize
+        } else {
+            0
+        };
+        for (probe, reference) in [(Probe::Clamp, &ref_clamp), (Probe::Wiper, &ref_wiper)] {
+            let model = render(case, &input, probe);
+            let c = compare(&model, reference, start, period);
+            let label = if probe == Probe::Clamp {
+                "clamp"
+            } else {
+                "wiper"
+            };
+            println!(
+                "{:<16} {:>6} {:>9.4} {:>9.4} {:>+9.3}   {:>+8.3}/{:>+8.3} {:>+8.3}/{:>+8.3}   {}",
+                case.name,
+                label,
+                100.0 * c.error,
+                100.0 * c.error_unaligned,
+                c.lag,
+                c.reference_peak.0,
+                c.reference_peak.1,
+                c.model_peak.0,
+                c.model_peak.1,
+                case.file.description
+            );
+            // Issue 2: normalised RMS error against ngspice at most 1% at the default quality, every case.
+            if c.error.is_nan() || c.error > MAX_ERROR {
+                failures.push(format!("{} {label}: {:.3}%", case.name, 100.0 * c.error));
+            }
+        }
+    }
+    assert!(
+        failures.is_empty(),
+        "model differs from ngspice by more than {}%: {}",
+        100.0 * MAX_ERROR,
+        failures.join(", ")
+    );
+}
+
+fn ngspice_on_path() -> bool {
+    std::process::Command::new("ngspice")
+        .arg("--version")
+        .output()
+        .map(|o| o.status.success())
+        .unwrap_or(false)
+}
+
+#[test]
+fn committed_reference_data_matches_a_fresh_ngspice_run() {
+    if std::env::var("BREAKDOWN_REGENERATE").as_deref() != Ok("1") {
+        println!("BREAKDOWN_REGENERATE is not 1: the committed ngspice data is used as it is");
+        return;
+    }
+    assert!(
+        ngspice_on_path(),
+        "BREAKDOWN_REGENERATE=1 but ngspice is not on PATH (Debian: apt-get install ngspice)"
+    );
+    let out = std::env::temp_dir().join(format!("breakdown-ngspice-{}", std::process::id()));
+    std::fs::create_dir_all(&out).expect("temporary directory");
+    let status = std::process::Command::new("python3")
+        .arg(references_dir().join("gen.py"))
+        .arg("--out")
+        .arg(&out)
+        .status()
+        .expect("python3 runs gen.py");
+    assert!(status.success(), "references/gen.py failed");
+    let mut failures = Vec::new();
+    for case in load_cases() {
+        let committed = read_reference(&case.dir.join("reference.csv"));
+        let fresh = read_reference(&out.join(&case.name).join("reference.csv"));
+        for (label, a, b) in [
+            ("clamp", &committed.0, &fresh.0),
+            ("wiper", &committed.1, &fresh.1),
+        ] {
+            assert_eq!(a.len(), b.len(), "{} {label}: lengths differ", case.name);
+            let energy: f64 = a.iter().map(|v| v * v).sum();
+            let diff: f64 = a.iter().zip(b).map(|(x, y)| (x - y) * (x - y)).sum();
+            let relative = (diff / energy).sqrt();
+            let worst = a
+                .iter()
+                .zip(b)
+                .map(|(x, y)| (x - y).abs())
+                .fold(0.0, f64::max);
+            println!(
+                "{:<16} {label}: fresh ngspice run against committed data: rms {:.2e}, worst {:.2e} V",
+                case.name, relative, worst
+            );
+            // The same netlist on another ngspice build may round differently; 1e-4 of the signal is far below
+            // the 1% the model is held to.
+            if relative > 1e-4 {
+                failures.push(format!("{} {label}: {relative:.2e}", case.name));
+            }
+        }
+    }
+    let _ = std::fs::remove_dir_all(&out);
+    assert!(
+        failures.is_empty(),
+        "committed reference data differs from a fresh ngspice run: {}",
+        failures.join(", ")
+    );
+}
