@@ -1,1 +1,200 @@
-//! Breakdown plugin (work in progress).
+//! Breakdown plugin: the `breakdown-dsp` model of a valve gain stage, a cathode follower and a switched
+//! back-to-back Zener clamp, as a CLAP and VST3 plugin with instant, level-matched comparison of the switch
+//! positions and an egui editor.
+
+pub mod analysis;
+pub mod editor;
+pub mod loudness;
+pub mod params;
+pub mod runtime;
+pub mod shared;
+
+use nice_plug::prelude::*;
+use nice_plug_egui::{
+    create_egui_editor, EguiEditor, EguiEditorState, EguiNiceSettings, RepaintNotifier,
+};
+use params::{BreakdownParams, ListenPoint, Position, SLOTS};
+use runtime::{Controls, Processor, SlotSpec, Worker};
+use shared::Shared;
+use std::sync::Arc;
+
+/// CLAP plugin id.
+pub const CLAP_ID: &str = "org.breakdown-project.breakdown";
+
+pub struct Breakdown {
+    params: Arc<BreakdownParams>,
+    shared: Arc<Shared>,
+    worker: Arc<Worker>,
+    processor: Option<Processor>,
+    editor_state: Arc<EguiEditorState>,
+}
+
+impl Default for Breakdown {
+    fn default() -> Self {
+        Breakdown {
+            params: Arc::new(BreakdownParams::default()),
+            shared: Arc::new(Shared::default()),
+            worker: Arc::new(Worker::default()),
+            processor: None,
+            editor_state: editor::default_state(),
+        }
+    }
+}
+
+/// Work for the background thread.
+pub enum Task {
+    /// Build requested models and free retired ones.
+    Service,
+}
+
+/// Read the parameters into the control values of one block (no allocation).
+pub fn controls_from(params: &BreakdownParams) -> Controls {
+    let quality = params.quality.value().quality();
+    let specs: [SlotSpec; SLOTS] = std::array::from_fn(|s| SlotSpec {
+        pair: params.pair_volts(Position::ALL[s]),
+        quality,
+    });
+    Controls {
+        gain: params.gain.value() as f64,
+        level: params.level.value() as f64,
+        calibration: params.input_calibration.value() as f64,
+        trim_db: params.trim.value() as f64,
+        heard: params.heard().index(),
+        specs,
+        listen_clamp: params.listen.value() == ListenPoint::ClampNode,
+        level_match: params.level_match.value(),
+    }
+}
+
+impl Plugin for Breakdown {
+    const NAME: &'static str = "Breakdown";
+    const VENDOR: &'static str = "Breakdown project";
+    const URL: &'static str = "";
+    const EMAIL: &'static str = "";
+    const VERSION: &'static str = env!("CARGO_PKG_VERSION");
+
+    const AUDIO_IO_LAYOUTS: &'static [AudioIOLayout] = &[
+        AudioIOLayout {
+            main_input_channels: NonZeroU32::new(2),
+            main_output_channels: NonZeroU32::new(2),
+            ..AudioIOLayout::const_default()
+        },
+        AudioIOLayout {
+            main_input_channels: NonZeroU32::new(1),
+            main_output_channels: NonZeroU32::new(1),
+            ..AudioIOLayout::const_default()
+        },
+        AudioIOLayout {
+            main_input_channels: NonZeroU32::new(1),
+            main_output_channels: NonZeroU32::new(2),
+            ..AudioIOLayout::const_default()
+        },
+    ];
+
+    type Editor = EguiEditor<editor::App>;
+    type SysExMessage = ();
+    type BackgroundTask = Task;
+
+    fn task_executor(&mut self) -> TaskExecutor<Self> {
+        let worker = self.worker.clone();
+        Box::new(move |task| match task {
+            Task::Service => worker.service(),
+        })
+    }
+
+    fn params(&self) -> Arc<dyn Params> {
+        self.params.clone()
+    }
+
+    fn editor(&mut self, _async_executor: AsyncExecutor<Self>) -> Option<Self::Editor> {
+        create_egui_editor(
+            self.editor_state.clone(),
+            RepaintNotifier::new(),
+            EguiNiceSettings::new().with_tile("Breakdown"),
+            editor::App::new(self.params.clone(), self.shared.clone()),
+        )
+    }
+
+    fn filter_state(state: &mut PluginState) {
+        params::repair_state(state);
+    }
+
+    fn activate(
+        &mut self,
+        audio_io_layout: &AudioIOLayout,
+        buffer_config: &BufferConfig,
+        context: &mut impl ActivateContext<Self>,
+    ) -> bool {
+        let models = audio_io_layout
+            .main_input_channels
+            .map(|n| n.get() as usize)
+            .unwrap_or(1);
+        let controls = controls_from(&self.params);
+        match Processor::new(
+            buffer_config.sample_rate as f64,
+            models,
+            &controls,
+            self.worker.clone(),
+            self.shared.clone(),
+        ) {
+            Ok(p) => {
+                context.set_latency_samples(p.latency());
+                self.processor = Some(p);
+                true
+            }
+            Err(e) => {
+                nice_error!("Breakdown cannot start: {e}");
+                false
+            }
+        }
+    }
+
+    fn reset(&mut self) {
+        if let Some(p) = self.processor.as_mut() {
+            p.reset();
+        }
+    }
+
+    fn process(
+        &mut self,
+        buffer: &mut Buffer,
+        _aux: &mut AuxiliaryBuffers,
+        context: &mut impl ProcessContext<Self>,
+    ) -> ProcessStatus {
+        let controls = controls_from(&self.params);
+        let Some(p) = self.processor.as_mut() else {
+            return ProcessStatus::Normal;
+        };
+        let actions = p.process(&controls, buffer.as_slice());
+        if let Some(latency) = actions.latency {
+            context.set_latency_samples(latency);
+        }
+        if actions.service_worker {
+            context.execute_background(Task::Service);
+        }
+        ProcessStatus::Normal
+    }
+}
+
+impl ClapPlugin for Breakdown {
+    const CLAP_ID: &'static str = CLAP_ID;
+    const CLAP_DESCRIPTION: Option<&'static str> =
+        Some("Audition back-to-back Zener clamp choices after a cathode follower, level-matched");
+    const CLAP_MANUAL_URL: Option<&'static str> = None;
+    const CLAP_SUPPORT_URL: Option<&'static str> = None;
+    const CLAP_FEATURES: &'static [ClapFeature] = &[
+        ClapFeature::AudioEffect,
+        ClapFeature::Distortion,
+        ClapFeature::Mono,
+        ClapFeature::Stereo,
+    ];
+}
+
+impl Vst3Plugin for Breakdown {
+    const VST3_CLASS_ID: [u8; 16] = *b"BreakdownZenerCl";
+    const VST3_SUBCATEGORIES: &'static [Vst3SubCategory] =
+        &[Vst3SubCategory::Fx, Vst3SubCategory::Distortion];
+}
+
+nice_export_clap!(Breakdown);
+nice_export_vst3!(Breakdown);
