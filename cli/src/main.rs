@@ -10,6 +10,7 @@ mod bench;
 mod compare;
 mod demo;
 mod render;
+mod report;
 
 #[derive(Parser)]
 #[command(
