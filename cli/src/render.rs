@@ -8,15 +8,15 @@ use breakdown_dsp::{Circuit, Engine, Probe, Quality, Settings};
 use std::io::IsTerminal;
 use std::path::{Path, PathBuf};
 use std::sync::atomic::{AtomicU64, Ordering};
-use std::time::Duration;
+use std::time::{Duration, Instant};
 
 /// Lowest and highest host rates the model runs at (Hz).
 pub const MIN_RATE: u32 = 22_050;
 pub const MAX_RATE: u32 = 384_000;
 /// Host samples processed between progress updates.
 const CHUNK: usize = 8192;
-/// Show a progress bar only when the render takes this many internal steps or more (a second or so).
-const PROGRESS_MIN_STEPS: usize = 8_000_000;
+/// Show a progress bar only once a render has run this long (short files finish without one).
+const PROGRESS_AFTER: Duration = Duration::from_millis(700);
 
 #[derive(clap::Args)]
 pub struct RenderArgs {
@@ -195,6 +195,17 @@ fn render_one(engine: &mut Engine, input: &[f32], probe: Probe, progress: &Atomi
     out
 }
 
+fn progress_bar(total: u64) -> indicatif::ProgressBar {
+    let bar = indicatif::ProgressBar::new(total);
+    bar.set_style(
+        indicatif::ProgressStyle::with_template(
+            "rendering {wide_bar} {percent:>3}%  {elapsed_precise} (about {eta} left)",
+        )
+        .unwrap_or_else(|_| indicatif::ProgressStyle::default_bar()),
+    );
+    bar
+}
+
 pub fn run(args: RenderArgs) -> Result<(), String> {
     let job = prepare(&args)?;
     check_output(&args.output, &args.input)?;
@@ -208,25 +219,20 @@ pub fn run(args: RenderArgs) -> Result<(), String> {
     }
     let frames = input.frames();
     let total = (frames * input.channels.len()) as u64;
-    let steps = frames * input.channels.len() * job.quality.factor();
-    let bar = if std::io::stderr().is_terminal() && steps >= PROGRESS_MIN_STEPS {
-        let bar = indicatif::ProgressBar::new(total);
-        bar.set_style(
-            indicatif::ProgressStyle::with_template(
-                "rendering {wide_bar} {percent:>3}%  {elapsed_precise} (about {eta} left)",
-            )
-            .unwrap_or_else(|_| indicatif::ProgressStyle::default_bar()),
-        );
-        Some(bar)
-    } else {
-        None
-    };
+    let terminal = std::io::stderr().is_terminal();
     let progress = AtomicU64::new(0);
+    let mut bar: Option<indicatif::ProgressBar> = None;
+    let start = Instant::now();
     let outputs = std::thread::scope(|scope| {
         let worker = scope.spawn(|| render_channels(&job, &input, &progress));
         while !worker.is_finished() {
+            let done = progress.load(Ordering::Relaxed);
+            // A bar only for renders that take a while and still have a good part to go.
+            if bar.is_none() && terminal && start.elapsed() >= PROGRESS_AFTER && done < total / 2 {
+                bar = Some(progress_bar(total));
+            }
             if let Some(bar) = &bar {
-                bar.set_position(progress.load(Ordering::Relaxed));
+                bar.set_position(done);
             }
             std::thread::sleep(Duration::from_millis(50));
         }
