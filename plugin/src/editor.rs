@@ -239,7 +239,10 @@ impl App {
                 });
                 ui.horizontal(|ui| {
                     ui.label("Level match");
-                    ui.add(ParamSlider::for_param(&p.level_match, setter).with_width(80.0));
+                    ui.add(ParamSlider::for_param(&p.level_match, setter).with_width(70.0));
+                    ui.label("Run all");
+                    ui.add(ParamSlider::for_param(&p.run_all, setter).with_width(70.0))
+                        .on_hover_text("Off: only the heard and the 'compare with' positions run (half the CPU)");
                 });
             });
         ui.add_space(6.0);

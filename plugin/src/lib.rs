@@ -63,6 +63,8 @@ pub fn controls_from(params: &BreakdownParams) -> Controls {
         specs,
         listen_clamp: params.listen.value() == ListenPoint::ClampNode,
         level_match: params.level_match.value(),
+        run_all: params.run_all.value(),
+        compare_with: params.compare_with.value().index(),
     }
 }
 

@@ -170,6 +170,9 @@ pub struct BreakdownParams {
     /// Keep every position at the same K-weighted short-term loudness.
     #[id = "level_match"]
     pub level_match: BoolParam,
+    /// Run every position all the time (instant comparison); off runs only the heard and "compare with" ones.
+    #[id = "run_all"]
+    pub run_all: BoolParam,
 }
 
 /// Tooltip text for the input calibration.
@@ -240,6 +243,7 @@ impl Default for BreakdownParams {
             quality: EnumParam::new("Quality", QualityChoice::X4),
             listen: EnumParam::new("Listening point", ListenPoint::Wiper),
             level_match: BoolParam::new("Level match", false),
+            run_all: BoolParam::new("Run all positions", true),
         }
     }
 }

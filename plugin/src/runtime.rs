@@ -48,6 +48,11 @@ pub struct Controls {
     /// Listen to the clamp node instead of the wiper.
     pub listen_clamp: bool,
     pub level_match: bool,
+    /// Run every position all the time (instant comparison). When false, only the heard position and the
+    /// "compare with" position run, which halves the cost; others restart from rest when selected.
+    pub run_all: bool,
+    /// Index of the position the compare key switches to.
+    pub compare_with: usize,
 }
 
 impl Default for Controls {
@@ -79,6 +84,8 @@ impl Default for Controls {
             ],
             listen_clamp: false,
             level_match: false,
+            run_all: true,
+            compare_with: 2,
         }
     }
 }
@@ -313,6 +320,8 @@ struct Slot {
     match_target: f64,
     /// Per model: (listening value, clamp volts) of the last sample.
     out: [(f64, f64); 2],
+    /// Running this block.
+    active: bool,
 }
 
 impl Slot {
@@ -402,6 +411,7 @@ impl Processor {
                 match_gain: 1.0,
                 match_target: 1.0,
                 out: [(0.0, 0.0); 2],
+                active: true,
             });
         }
         let slots: [Slot; SLOTS] = match slots.try_into() {
@@ -539,7 +549,26 @@ impl Processor {
             self.heard = heard;
             self.heard_fade = 0;
         }
-        for slot in self.slots.iter_mut() {
+        let fading_from = (self.heard_fade < self.fade_len).then_some(self.previous);
+        for (s, slot) in self.slots.iter_mut().enumerate() {
+            let active = controls.run_all
+                || s == self.heard
+                || Some(s) == fading_from
+                || s == controls.compare_with;
+            if active && !slot.active {
+                // Restart from rest: its history is stale.
+                for e in slot.current.engines.iter_mut() {
+                    e.reset();
+                }
+                if let Some(next) = slot.next.as_mut() {
+                    for e in next.engines.iter_mut() {
+                        e.reset();
+                    }
+                }
+                slot.loudness.reset();
+                slot.out = [(0.0, 0.0); 2];
+            }
+            slot.active = active;
             for e in slot.current.engines.iter_mut() {
                 e.set_gain(controls.gain);
                 e.set_level(controls.level);
@@ -579,6 +608,9 @@ impl Processor {
             }
             let mut new_block = false;
             for (s, slot) in self.slots.iter_mut().enumerate() {
+                if !slot.active {
+                    continue;
+                }
                 let fading = slot.next.is_some();
                 let w = if fading {
                     fade_weight(slot.fade as f64 / self.fade_len as f64)
@@ -661,11 +693,19 @@ impl Processor {
     }
 
     fn update_match(&mut self, enabled: bool) {
-        let loudness: [f64; SLOTS] = std::array::from_fn(|s| self.slots[s].loudness.lufs());
+        let loudness: [f64; SLOTS] = std::array::from_fn(|s| {
+            if self.slots[s].active {
+                self.slots[s].loudness.lufs()
+            } else {
+                f64::NEG_INFINITY
+            }
+        });
         for (s, l) in loudness.iter().enumerate() {
-            self.shared.slots[s]
-                .loudness
-                .store(*l as f32, Ordering::Relaxed);
+            if self.slots[s].active {
+                self.shared.slots[s]
+                    .loudness
+                    .store(*l as f32, Ordering::Relaxed);
+            }
         }
         let reference = loudness
             .iter()
