@@ -24,6 +24,9 @@ const BAND_LIMIT_HZ: f64 = 15_000.0;
 const MAX_ERROR: f64 = 0.01;
 /// Lags searched for the alignment (base-rate samples either way).
 const MAX_LAG: f64 = 3.0;
+/// Largest accepted lag: the model's probes are latency-compensated, so they must line up with ngspice's time
+/// axis (0.05 sample is about 1 us at 48 kHz).
+const MAX_ACCEPTED_LAG: f64 = 0.05;
 
 #[derive(Deserialize)]
 struct CaseFile {
@@ -133,8 +136,8 @@ fn input_signal(case: &Case, samples: usize) -> Vec<f32> {
         .collect()
 }
 
-fn render(case: &Case, input: &[f32], probe: Probe) -> Vec<f64> {
-    let mut engine = Engine::new(&case.circuit, SAMPLE_RATE, Quality::X4, case.file.settings)
+fn render(case: &Case, input: &[f32], probe: Probe, quality: Quality) -> Vec<f64> {
+    let mut engine = Engine::new(&case.circuit, SAMPLE_RATE, quality, case.file.settings)
         .unwrap_or_else(|e| panic!("{}: {e}", case.name));
     engine
         .render(input, probe)
@@ -262,7 +265,7 @@ fn model_matches_ngspice_at_default_quality() {
             0
         };
         for (probe, reference) in [(Probe::Clamp, &ref_clamp), (Probe::Wiper, &ref_wiper)] {
-            let model = render(case, &input, probe);
+            let model = render(case, &input, probe, Quality::X4);
             let c = compare(&model, reference, start, period);
             let label = if probe == Probe::Clamp {
                 "clamp"
@@ -286,12 +289,40 @@ fn model_matches_ngspice_at_default_quality() {
             if c.error.is_nan() || c.error > MAX_ERROR {
                 failures.push(format!("{} {label}: {:.3}%", case.name, 100.0 * c.error));
             }
+            // The engine removes its oversampling latency: the best lag against ngspice must be (nearly) zero.
+            if c.lag.abs() > MAX_ACCEPTED_LAG {
+                failures.push(format!("{} {label}: lag {:+.3} samples", case.name, c.lag));
+            }
+        }
+    }
+    if std::env::var("BREAKDOWN_CROSSCHECK_QUALITIES").as_deref() == Ok("1") {
+        // Information only: the clamp-node error at every quality setting.
+        println!("clamp-node error (%) per quality:");
+        for case in &cases {
+            let (reference, _) = read_reference(&case.dir.join("reference.csv"));
+            let input = input_signal(case, reference.len());
+            let start = (case.file.compare.skip * SAMPLE_RATE).round() as usize;
+            let period = (SAMPLE_RATE / case.file.signal.frequency).round() as usize;
+            let row: Vec<String> = Quality::ALL
+                .iter()
+                .map(|&q| {
+                    let c = compare(
+                        &render(case, &input, Probe::Clamp, q),
+                        &reference,
+                        start,
+                        period,
+                    );
+                    format!("{}x {:.4}", q.factor(), 100.0 * c.error)
+                })
+                .collect();
+            println!("{:<16} {}", case.name, row.join("  "));
         }
     }
     assert!(
         failures.is_empty(),
-        "model differs from ngspice by more than {}%: {}",
+        "model differs from ngspice by more than {}% (or lags by more than {} sample): {}",
         100.0 * MAX_ERROR,
+        MAX_ACCEPTED_LAG,
         failures.join(", ")
     );
 }
@@ -325,6 +356,16 @@ fn committed_reference_data_matches_a_fresh_ngspice_run() {
     assert!(status.success(), "references/gen.py failed");
     let mut failures = Vec::new();
     for case in load_cases() {
+        // gen.py writes the netlist from circuit.toml and case.toml: a committed netlist that differs was not
+        // regenerated after an edit.
+        let netlist =
+            |dir: &Path| std::fs::read_to_string(dir.join("netlist.cir")).unwrap_or_default();
+        if netlist(&case.dir) != netlist(&out.join(&case.name)) {
+            failures.push(format!(
+                "{}: committed netlist.cir is stale (rerun python3 references/gen.py)",
+                case.name
+            ));
+        }
         let committed = read_reference(&case.dir.join("reference.csv"));
         let fresh = read_reference(&out.join(&case.name).join("reference.csv"));
         for (label, a, b) in [
