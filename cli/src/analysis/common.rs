@@ -2,7 +2,6 @@
 //! the jack, and one render that returns the meters over a measuring window plus the wiper level.
 
 use breakdown_dsp::circuit::{SwitchPosition, ZenerSpec};
-use breakdown_dsp::engine::CLAMPED_CURRENT;
 use breakdown_dsp::{Circuit, Engine, Meters, Quality, Settings, StageProbe};
 use std::f64::consts::PI;
 
@@ -33,8 +32,9 @@ impl Rig {
     /// selected. The original positions stay as they are.
     pub fn with_pair(&self, positive: Option<ZenerSpec>, negative: Option<ZenerSpec>) -> Rig {
         let mut rig = self.clone();
+        let index = rig.circuit.clamp.position.len();
         rig.circuit.clamp.position.push(SwitchPosition {
-            name: "analysis candidate".into(),
+            name: format!("analysis candidate {index}"),
             positive,
             negative,
         });
@@ -65,7 +65,12 @@ impl Rig {
 
     /// A prepared engine at the analysis rate, its input calibrated so one sample unit is one volt at the jack.
     pub fn engine(&self) -> Result<Engine, String> {
-        let mut e = Engine::new(&self.circuit, RATE, self.quality, self.settings)
+        self.engine_at(RATE)
+    }
+
+    /// The same at host rate `rate` (Hz).
+    pub fn engine_at(&self, rate: f64) -> Result<Engine, String> {
+        let mut e = Engine::new(&self.circuit, rate, self.quality, self.settings)
             .map_err(|e| e.to_string())?;
         e.set_input_calibration(1.0);
         Ok(e)
@@ -78,6 +83,8 @@ pub struct Stimulus {
     pub volts: Vec<f32>,
     /// Meters are reset at this sample: everything before it is lead-in (fade-in, coupling cap settling).
     pub measure_from: usize,
+    /// Sample rate (Hz).
+    pub rate: f64,
 }
 
 impl Stimulus {
@@ -99,6 +106,7 @@ impl Stimulus {
         Stimulus {
             volts,
             measure_from: (n_fade + (settle * RATE).round() as usize).min(n_total),
+            rate: RATE,
         }
     }
 
@@ -113,27 +121,25 @@ impl Stimulus {
         Stimulus::tone(peak_volts, freq, 0.01, 0.14, 0.29)
     }
 
-    /// A recorded DI already in volts at the jack; measured from the start.
-    pub fn recording(volts: Vec<f32>) -> Stimulus {
+    /// A recorded DI already in volts at the jack, at `rate` Hz; measured from the start.
+    pub fn recording(volts: Vec<f32>, rate: f64) -> Stimulus {
         Stimulus {
             volts,
             measure_from: 0,
+            rate,
         }
     }
 }
 
-/// What one render tells: meters over the measuring window, the idle operating point, the wiper RMS and the
-/// share of base-rate samples with the pair conducting each way.
+/// What one render tells: meters over the measuring window, the idle operating point and RMS levels.
 #[derive(Clone, Copy, Debug)]
 pub struct Outcome {
     pub meters: Meters,
     pub idle: StageProbe,
     /// RMS of the level pot wiper over the measuring window (V).
     pub wiper_rms: f64,
-    /// Share of measured base-rate samples with the pair current above CLAMPED_CURRENT, positive way.
-    pub share_positive: f64,
-    /// Same, negative way.
-    pub share_negative: f64,
+    /// RMS of the clamp node over the measuring window (V).
+    pub clamp_rms: f64,
 }
 
 impl Outcome {
@@ -153,8 +159,8 @@ pub fn run_with(engine: &mut Engine, stimulus: &Stimulus) -> Outcome {
     let latency = engine.latency();
     let total = stimulus.volts.len() + latency;
     let mut sum_sq = 0.0;
+    let mut clamp_sq = 0.0;
     let mut counted = 0usize;
-    let (mut pos, mut neg) = (0usize, 0usize);
     let mut meters = None;
     for n in 0..total {
         if n == stimulus.measure_from {
@@ -173,12 +179,8 @@ pub fn run_with(engine: &mut Engine, stimulus: &Stimulus) -> Outcome {
         // The frame lags the input by `latency` samples.
         if n >= stimulus.measure_from + latency {
             sum_sq += frame.wiper_volts * frame.wiper_volts;
+            clamp_sq += frame.clamp_volts * frame.clamp_volts;
             counted += 1;
-            if frame.zener_current > CLAMPED_CURRENT {
-                pos += 1;
-            } else if frame.zener_current < -CLAMPED_CURRENT {
-                neg += 1;
-            }
         }
     }
     let c = counted.max(1) as f64;
@@ -186,14 +188,13 @@ pub fn run_with(engine: &mut Engine, stimulus: &Stimulus) -> Outcome {
         meters: meters.unwrap_or(*engine.meters()),
         idle,
         wiper_rms: (sum_sq / c).sqrt(),
-        share_positive: pos as f64 / c,
-        share_negative: neg as f64 / c,
+        clamp_rms: (clamp_sq / c).sqrt(),
     }
 }
 
-/// Render once on a fresh engine.
+/// Render once on a fresh engine at the stimulus's rate.
 pub fn run(rig: &Rig, stimulus: &Stimulus) -> Result<Outcome, String> {
-    let mut engine = rig.engine()?;
+    let mut engine = rig.engine_at(stimulus.rate)?;
     Ok(run_with(&mut engine, stimulus))
 }
 

@@ -1,0 +1,204 @@
+//! `breakdown parts`: a parts list for the switch layout with the minimum ratings the worst-case render asks
+//! for, the orientation of each Zener in the antiseries string and the safety cautions.
+
+use super::common::{Rig, Stimulus};
+use super::ratings::{ratings, RatingSource, Ratings};
+
+/// Standard power ratings of glass and plastic Zeners (W), smallest first.
+const ZENER_WATTS: [f64; 6] = [0.5, 1.0, 1.3, 2.0, 3.0, 5.0];
+/// Standard resistor power ratings (W).
+const RESISTOR_WATTS: [f64; 6] = [0.125, 0.25, 0.5, 1.0, 2.0, 3.0];
+/// Common film capacitor voltage ratings (V).
+const CAP_VOLTS: [f64; 8] = [63.0, 100.0, 160.0, 250.0, 400.0, 450.0, 630.0, 1000.0];
+
+/// The smallest standard value at or above `need`, or None above the list.
+pub fn standard_at_least(list: &[f64], need: f64) -> Option<f64> {
+    list.iter().copied().find(|v| *v >= need)
+}
+
+/// One line of the list.
+#[derive(Clone, Debug)]
+pub struct Line {
+    pub item: String,
+    pub position: String,
+    pub value: String,
+    pub part_number: String,
+    pub orientation: String,
+    pub worst_case: String,
+    pub minimum_rating: String,
+}
+
+/// The worst case the ratings come from.
+#[derive(Clone, Copy, Debug)]
+pub struct WorstCase {
+    pub gain: f64,
+    pub input_volts: f64,
+    pub tone_hz: f64,
+}
+
+fn watts(w: f64) -> String {
+    if w >= 1.0 {
+        format!("{w} W")
+    } else {
+        format!("{:.0} mW", w * 1e3)
+    }
+}
+
+/// Ratings per listed switch position.
+pub type PositionRatings = Vec<(usize, Ratings)>;
+
+/// Build the list for `positions` of `rig`'s circuit.
+pub fn parts_list(
+    rig: &Rig,
+    positions: &[usize],
+    worst: WorstCase,
+    source: RatingSource,
+    cap_rating_volts: f64,
+) -> Result<(Vec<Line>, PositionRatings), String> {
+    let stimulus = Stimulus::sustained(worst.input_volts, worst.tone_hz);
+    let mut lines = Vec::new();
+    let mut all = Vec::new();
+    let mut worst_feed: f64 = 0.0;
+    let mut cap = None;
+    for &pos in positions {
+        let mut r = rig.with_gain(worst.gain);
+        r.settings.position = pos;
+        let name = r.position_name().to_string();
+        let (rat, _) = ratings(&r, &stimulus, source, cap_rating_volts)?;
+        worst_feed = worst_feed.max(rat.feed_resistor_watts);
+        cap = Some(rat.cap);
+        for p in &rat.parts {
+            let need = 2.0 * p.average_watts;
+            let min = standard_at_least(&ZENER_WATTS, need)
+                .map(watts)
+                .unwrap_or_else(|| format!("above 5 W ({} needed)", watts(need)));
+            let orientation = if p.role == "positive" {
+                "sets the + clamp: cathode (band) to the clamp node, anode to the middle joint"
+            } else {
+                "sets the - clamp: anode to the middle joint, cathode (band) to ground"
+            };
+            lines.push(Line {
+                item: format!("Zener ({})", p.role),
+                position: format!("{pos} {name}"),
+                value: format!("{} V", p.volts),
+                part_number: p.part_number.unwrap_or("-").to_string(),
+                orientation: orientation.into(),
+                worst_case: format!(
+                    "{:.2} mW average, {:.1} mW peak, {:.2} mA peak",
+                    p.average_watts * 1e3,
+                    p.peak_watts * 1e3,
+                    p.peak_current * 1e3
+                ),
+                minimum_rating: format!(
+                    "{min} (2x average, common practice); chosen {}: {}",
+                    p.rating_source,
+                    p.verdict.label()
+                ),
+            });
+        }
+        all.push((pos, rat));
+    }
+    let c = &rig.circuit.clamp;
+    if let Some(cap) = cap {
+        let need = cap.supply_volts.max(1.5 * cap.dc_volts);
+        lines.push(Line {
+            item: "coupling capacitor".into(),
+            position: "all".into(),
+            value: format!("{:.0} nF film", c.coupling_cap * 1e9),
+            part_number: "-".into(),
+            orientation: "non-polarised".into(),
+            worst_case: format!(
+                "{:.1} V DC at the operating point, B+ {:.0} V at warm-up",
+                cap.dc_volts, cap.supply_volts
+            ),
+            minimum_rating: format!(
+                "{} (B+ and 1.5x DC, common practice); stated rating {:.0} V: {}",
+                standard_at_least(&CAP_VOLTS, need)
+                    .map(|v| format!("{v:.0} V"))
+                    .unwrap_or_else(|| format!("{need:.0} V")),
+                cap.rating_volts,
+                cap.verdict.label()
+            ),
+        });
+    }
+    lines.push(Line {
+        item: "feed resistor".into(),
+        position: "all".into(),
+        value: format!("{:.1} kohm", c.feed_resistor / 1e3),
+        part_number: "-".into(),
+        orientation: "-".into(),
+        worst_case: format!("at most {:.2} mW average", worst_feed * 1e3),
+        minimum_rating: standard_at_least(&RESISTOR_WATTS, 2.0 * worst_feed)
+            .map(|w| format!("{} (2x, common practice)", watts(w)))
+            .unwrap_or_else(|| format!("{} needed", watts(2.0 * worst_feed))),
+    });
+    lines.push(Line {
+        item: "level pot".into(),
+        position: "all".into(),
+        value: format!("{:.0} kohm {:?}", c.level_pot / 1e3, c.level_pot_law).to_lowercase(),
+        part_number: "-".into(),
+        orientation: match c.placement {
+            breakdown_dsp::Placement::AcrossPot => {
+                "Zeners across the whole track (clamp node = pot top)".into()
+            }
+            breakdown_dsp::Placement::AtWiper => "Zeners from the wiper to ground".into(),
+        },
+        worst_case: "-".into(),
+        minimum_rating: "-".into(),
+    });
+    Ok((lines, all))
+}
+
+fn csv_field(s: &str) -> String {
+    if s.contains(',') || s.contains('"') {
+        format!("\"{}\"", s.replace('"', "\"\""))
+    } else {
+        s.to_string()
+    }
+}
+
+pub fn to_csv(lines: &[Line]) -> String {
+    let mut s = String::from(
+        "item,position,value,part_number,orientation,worst_case_load,minimum_rating\n",
+    );
+    for l in lines {
+        let f = [
+            &l.item,
+            &l.position,
+            &l.value,
+            &l.part_number,
+            &l.orientation,
+            &l.worst_case,
+            &l.minimum_rating,
+        ];
+        s.push_str(&f.iter().map(|x| csv_field(x)).collect::<Vec<_>>().join(","));
+        s.push('\n');
+    }
+    s
+}
+
+pub fn to_text(lines: &[Line], worst: WorstCase) -> String {
+    let mut s = format!(
+        "Parts list. Loads from a worst-case render: {:.1} V peak {:.0} Hz tone at the jack, gain {:.2}.\n\
+         Antiseries string: clamp node -> [+ part: band to node] -> middle joint <- [- part: band to ground] -> ground\n\
+         (the two anodes meet in the middle).\n\n",
+        worst.input_volts, worst.tone_hz, worst.gain
+    );
+    for l in lines {
+        s.push_str(&format!("* {} [{}]: {}", l.item, l.position, l.value));
+        if l.part_number != "-" {
+            s.push_str(&format!(" ({})", l.part_number));
+        }
+        s.push('\n');
+        if l.orientation != "-" {
+            s.push_str(&format!("    orientation: {}\n", l.orientation));
+        }
+        if l.worst_case != "-" {
+            s.push_str(&format!("    worst case: {}\n", l.worst_case));
+        }
+        if l.minimum_rating != "-" {
+            s.push_str(&format!("    minimum rating: {}\n", l.minimum_rating));
+        }
+    }
+    s
+}
