@@ -71,7 +71,7 @@ fn pluck(
     let frac = (period - 0.5 - len as f64).clamp(0.05, 0.95);
     let allpass = (1.0 - frac) / (1.0 + frac);
     // Excitation: noise, lowpassed more for softer picking, with the pick-position notch comb.
-    let brightness = 0.25 + 0.6 * velocity;
+    let brightness = 0.12 + 0.3 * velocity;
     let mut excitation = vec![0.0; len];
     let mut lp = 0.0;
     for e in excitation.iter_mut() {

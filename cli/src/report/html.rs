@@ -34,6 +34,45 @@ fn fo(x: Option<f64>, digits: usize, unit: &str) -> String {
     }
 }
 
+/// Power with a unit that keeps three significant figures.
+fn watts(w: f64) -> String {
+    let a = w.abs();
+    if !a.is_finite() {
+        return f(w, 3);
+    }
+    let (scale, unit) = if a >= 1.0 {
+        (1.0, "W")
+    } else if a >= 1e-3 {
+        (1e3, "mW")
+    } else if a >= 1e-6 {
+        (1e6, "&micro;W")
+    } else if a > 0.0 {
+        (1e9, "nW")
+    } else {
+        return "0 W".into();
+    };
+    let v = w * scale;
+    let digits = if v.abs() >= 100.0 {
+        0
+    } else if v.abs() >= 10.0 {
+        1
+    } else {
+        2
+    };
+    format!("{v:.digits$} {unit}")
+}
+
+/// A percentage small or large, with sensible digits.
+fn share(percent: f64) -> String {
+    if percent == 0.0 {
+        "0%".into()
+    } else if percent < 0.01 {
+        format!("{percent:.1e}%")
+    } else {
+        format!("{percent:.2}%")
+    }
+}
+
 fn time(seconds: f64) -> String {
     let m = (seconds / 60.0).floor();
     format!("{}:{:06.3}", m as u64, seconds - 60.0 * m)
@@ -268,7 +307,7 @@ pub fn render(report: &Report) -> Result<String, String> {
         let _ = write!(
             h,
             "<h3>What the Zeners see on this DI</h3>\n<table><tr><th class=\"l\">variant</th><th>peak current (mA)</th>\
-             <th>RMS current (mA)</th><th>positive part: average / peak (W)</th><th>negative part: average / peak (W)</th>\
+             <th>RMS current (mA)</th><th>positive part: average / peak power</th><th>negative part: average / peak power</th>\
              <th>rating (W)</th><th>worst average vs rating</th></tr>\n"
         );
         for r in &di.results {
@@ -282,11 +321,7 @@ pub fn render(report: &Report) -> Result<String, String> {
                 }
                 Some(z) => {
                     let part = |p: &Option<super::PartLoad>| match p {
-                        Some(p) => format!(
-                            "{} / {}",
-                            f(p.average_watts * 1e3, 3) + " m",
-                            f(p.peak_watts * 1e3, 3) + " m"
-                        ),
+                        Some(p) => format!("{} / {}", watts(p.average_watts), watts(p.peak_watts)),
                         None => "none".into(),
                     };
                     let rating = z
@@ -302,7 +337,7 @@ pub fn render(report: &Report) -> Result<String, String> {
                     let verdict = if worst > 50.0 {
                         format!("<span class=\"warn\">{}% of rating</span>", f(worst, 2))
                     } else {
-                        format!("<span class=\"ok\">{}% of rating</span>", f(worst, 4))
+                        format!("<span class=\"ok\">{} of rating</span>", share(worst))
                     };
                     let _ = write!(
                         h,
