@@ -82,15 +82,17 @@ pub fn overlay(title: &str, rate: f64, traces: &[Trace]) -> Result<String, Strin
             .light_line_style(RGBColor(235, 235, 235))
             .draw()
             .map_err(err)?;
-        for t in traces {
+        // Earlier series are drawn wider, so a trace that another one covers exactly still shows at its edges.
+        for (i, t) in traces.iter().enumerate() {
             let c = colour(t.colour);
+            let width = (traces.len() - i).clamp(1, 4) as u32;
             chart
                 .draw_series(LineSeries::new(
                     t.samples
                         .iter()
                         .enumerate()
                         .map(|(n, v)| (n as f64 / rate * 1e3, *v as f64)),
-                    ShapeStyle::from(&c).stroke_width(2),
+                    ShapeStyle::from(&c).stroke_width(width),
                 ))
                 .map_err(err)?
                 .label(t.name)
