@@ -16,8 +16,8 @@ use std::sync::atomic::Ordering;
 use std::sync::Arc;
 use std::time::Duration;
 
-pub const WIDTH: u32 = 1040;
-pub const HEIGHT: u32 = 700;
+pub const WIDTH: u32 = 1120;
+pub const HEIGHT: u32 = 720;
 
 const BACKGROUND: Color32 = Color32::from_rgb(22, 26, 30);
 const PANEL: Color32 = Color32::from_rgb(32, 37, 43);
@@ -113,6 +113,27 @@ impl NiceEguiApp for App {
                 egui::RichText::new("Zener clamp audition: cathode follower -> back-to-back pair")
                     .color(TEXT_DIM),
             );
+            egui::ComboBox::from_id_salt("presets")
+                .selected_text("Demo presets")
+                .show_ui(ui, |ui| {
+                    for (file, text) in crate::presets::DEMO_PRESETS {
+                        match crate::presets::Preset::from_toml(text) {
+                            Ok(preset) => {
+                                let r = ui
+                                    .selectable_label(false, &preset.name)
+                                    .on_hover_text(&preset.description);
+                                if r.clicked() {
+                                    if let Ok(state) = preset.to_state() {
+                                        gui.set_state(state);
+                                    }
+                                }
+                            }
+                            Err(e) => {
+                                ui.label(format!("{file}: {e}"));
+                            }
+                        }
+                    }
+                });
         });
         ui.add_space(4.0);
         ui.horizontal_top(|ui| {
@@ -136,8 +157,7 @@ impl NiceEguiApp for App {
                 "Safety: valve amps hold lethal voltages, also after switch-off. These numbers are a simulation, \
                  not a measurement; drain and verify capacitors, work live only with training.",
             );
-            ui.hyperlink_to("Cautions (README)", "https://example.invalid/breakdown#safety")
-                .on_hover_text("README section \"Safety\" in the Breakdown repository");
+            ui.label(egui::RichText::new("Full cautions: README, section \"Safety\".").color(TEXT_DIM));
         });
     }
 }
@@ -331,7 +351,7 @@ impl App {
         let rate = self.shared.sample_rate.load(Ordering::Relaxed);
         let scope_ms = self.params.state.read().map(|s| s.scope_ms).unwrap_or(20.0);
         let window =
-            ((scope_ms as f64 * 1e-3 * rate) as usize).clamp(64, crate::shared::RING_LEN / 4);
+            ((scope_ms as f64 * 1e-3 * rate) as usize).clamp(64, crate::shared::RING_LEN / 6);
         self.scope_buffer.resize(window * 3, 0.0);
         self.shared.scope.newest(&mut self.scope_buffer);
         let start = trigger(&self.scope_buffer, window).unwrap_or(self.scope_buffer.len() - window);
@@ -348,7 +368,8 @@ impl App {
         if tp.is_finite() {
             range = range.max(tp.abs().max(tn.abs()) * 1.2);
         }
-        let (resp, painter) = ui.allocate_painter(Vec2::new(680.0, 210.0), Sense::hover());
+        let (resp, painter) =
+            ui.allocate_painter(Vec2::new(ui.available_width() - 8.0, 220.0), Sense::hover());
         let rect = resp.rect;
         painter.rect_filled(rect, 4.0, PANEL);
         let y_of = |v: f32| rect.center().y - v / range * rect.height() * 0.45;
@@ -398,7 +419,7 @@ impl App {
             Pos2::new(rect.left() + 40.0, rect.top() + 4.0),
             Align2::LEFT_TOP,
             format!(
-                "clamp node ({} , {scope_ms:.0} ms)   peak + {}   peak - {}   p-p {:.1} V   clamped {:.0}% of the time",
+                "clamp node, {} ({scope_ms:.0} ms)  peak + {}  peak - {}  p-p {:.1} V  clamped {:.0}% of the time",
                 Position::ALL[heard].label(),
                 fmt_volts(pp),
                 fmt_volts(pn),
@@ -411,7 +432,8 @@ impl App {
     }
 
     fn spectrum_view(&self, ui: &mut egui::Ui) {
-        let (resp, painter) = ui.allocate_painter(Vec2::new(680.0, 190.0), Sense::hover());
+        let (resp, painter) =
+            ui.allocate_painter(Vec2::new(ui.available_width() - 8.0, 200.0), Sense::hover());
         let rect = resp.rect;
         painter.rect_filled(rect, 4.0, PANEL);
         let sp = &self.spectrum;
@@ -477,7 +499,7 @@ impl App {
                 );
             }
             format!(
-                "listening point  f0 {:.0} Hz   THD_F {:.2}% (harmonics 2-{}, up to {:.0} kHz)   even/odd energy {:.0}/{:.0}",
+                "listening point  f0 {:.0} Hz  THD_F {:.2}% (harmonics 2-{}, band to {:.0} kHz)  even/odd {:.0}/{:.0}%",
                 f0,
                 sp.thd_f * 100.0,
                 sp.harmonic_count,
@@ -506,7 +528,7 @@ impl App {
             .inner_margin(8.0)
             .corner_radius(4.0)
             .show(ui, |ui| {
-                ui.set_width(664.0);
+                ui.set_width(ui.available_width() - 24.0);
                 let vp = r.volts_positive.load(Ordering::Relaxed);
                 if !vp.is_finite() {
                     ui.label("Zener ratings: no parts in this position.");

@@ -6,6 +6,7 @@ pub mod analysis;
 pub mod editor;
 pub mod loudness;
 pub mod params;
+pub mod presets;
 pub mod runtime;
 pub mod shared;
 
@@ -27,6 +28,34 @@ pub struct Breakdown {
     worker: Arc<Worker>,
     processor: Option<Processor>,
     editor_state: Arc<EguiEditorState>,
+    /// Standalone only: a synthetic input tone when `BREAKDOWN_DEMO_INPUT` is set (for the headless screenshot,
+    /// whose dummy audio backend delivers silence).
+    #[cfg(feature = "standalone")]
+    demo: Option<DemoTone>,
+}
+
+/// A steady 196 Hz sine at 0.9 of full scale, for the standalone's demo input (every harmonic the spectrum
+/// shows then comes from the modelled stage).
+#[cfg(feature = "standalone")]
+pub struct DemoTone {
+    phase: f64,
+    step: f64,
+}
+
+#[cfg(feature = "standalone")]
+impl DemoTone {
+    fn fill(&mut self, channels: &mut [&mut [f32]], rate: f64) {
+        self.step = 196.0 / rate;
+        let frames = channels.iter().map(|c| c.len()).min().unwrap_or(0);
+        for n in 0..frames {
+            let w = 2.0 * std::f64::consts::PI * self.phase;
+            let x = (0.9 * w.sin()) as f32;
+            for c in channels.iter_mut() {
+                c[n] = x;
+            }
+            self.phase = (self.phase + self.step).fract();
+        }
+    }
 }
 
 impl Default for Breakdown {
@@ -37,6 +66,11 @@ impl Default for Breakdown {
             worker: Arc::new(Worker::default()),
             processor: None,
             editor_state: editor::default_state(),
+            #[cfg(feature = "standalone")]
+            demo: std::env::var_os("BREAKDOWN_DEMO_INPUT").map(|_| DemoTone {
+                phase: 0.0,
+                step: 0.0,
+            }),
         }
     }
 }
@@ -167,6 +201,10 @@ impl Plugin for Breakdown {
         let Some(p) = self.processor.as_mut() else {
             return ProcessStatus::Normal;
         };
+        #[cfg(feature = "standalone")]
+        if let Some(tone) = self.demo.as_mut() {
+            tone.fill(buffer.as_slice(), p.sample_rate());
+        }
         let actions = p.process(&controls, buffer.as_slice());
         if let Some(latency) = actions.latency {
             context.set_latency_samples(latency);
