@@ -1,19 +1,43 @@
-use breakdown_dsp::{Circuit, Stage};
+//! Quick speed probe: one channel of a decaying plucked tone at 48 kHz through X1 and X4 (argument: tenths of a second).
+use breakdown_dsp::{Circuit, Engine, Quality, Settings};
+use std::time::Instant;
 fn main() {
     let c = Circuit::reference();
-    let rate = 768000.0;
-    let mut s = Stage::new(&c, rate, 0.5, 1);
-    let p = *s.probe();
-    println!("{p:#?}");
-    let att = (81f64.powf(0.9) - 1.0) / 80.0;
-    let n = (0.03 * rate) as usize;
-    let mut iters = 0u64; let mut maxit = 0;
-    for i in 0..n {
-        let t = i as f64 / rate;
-        let v = 0.6 * (2.0 * std::f64::consts::PI * 1000.0 * t).sin() * att;
-        let p = *s.process(v);
-        let r = s.last_report(); iters += r.iterations as u64; maxit = maxit.max(r.iterations);
-        if i % 64 == 0 && t > 0.028 { println!("{t:.7} {:.6} {:.6} {:.6} {:.6}", p.clamp_volts, p.wiper_volts, p.follower_cathode_volts, p.gain_plate_volts); }
+    for q in [Quality::X1, Quality::X4] {
+        let mut e = Engine::new(
+            &c,
+            48000.0,
+            q,
+            Settings {
+                gain: 0.8,
+                level: 0.5,
+                position: 1,
+            },
+        )
+        .unwrap();
+        let secs: usize = std::env::args()
+            .nth(1)
+            .map(|s| s.parse().unwrap())
+            .unwrap_or(5);
+        let n = 48000 * secs / 10;
+        let input: Vec<f32> = (0..n)
+            .map(|i| {
+                let t = i as f64 / 48000.0;
+                let env = (-((t % 1.0) * 3.0)).exp();
+                (0.5 * env
+                    * ((2.0 * std::f64::consts::PI * 110.0 * t).sin()
+                        + 0.5 * (2.0 * std::f64::consts::PI * 220.0 * t).sin()
+                        + 0.25 * (2.0 * std::f64::consts::PI * 330.0 * t).sin()))
+                    as f32
+            })
+            .collect();
+        let t0 = Instant::now();
+        let mut acc = 0.0f64;
+        for &x in &input {
+            acc += e.process_sample(x).listen;
+        }
+        let el = t0.elapsed().as_secs_f64();
+        let m = e.meters();
+        println!("{q:?}: {:.1} ns/sample, RT x{:.1}, iters/step {:.2}, failures {}, maxpeak {:.2} {:.2} acc {acc:.3}", el*1e9/n as f64, (n as f64/48000.0)/el, m.newton_iterations as f64/m.samples as f64, m.newton_failures, m.clamp_peak_positive, m.clamp_peak_negative);
     }
-    println!("avg iters {} max {}", iters as f64 / n as f64, maxit);
 }

@@ -124,7 +124,10 @@ impl Meters {
         if time == 0.0 {
             (0.0, 0.0)
         } else {
-            (self.positive_part_energy / time, self.negative_part_energy / time)
+            (
+                self.positive_part_energy / time,
+                self.negative_part_energy / time,
+            )
         }
     }
     /// Peak-to-peak clamp node swing (V).
@@ -147,9 +150,12 @@ impl Meters {
         self.positive_part_energy += wp * self.period;
         self.negative_part_energy += wn * self.period;
         self.gain_grid_current_peak = self.gain_grid_current_peak.max(p.gain_grid_current);
-        self.follower_grid_current_peak = self.follower_grid_current_peak.max(p.follower_grid_current);
+        self.follower_grid_current_peak =
+            self.follower_grid_current_peak.max(p.follower_grid_current);
         self.gain_plate_current_min = self.gain_plate_current_min.min(p.gain_plate_current);
-        self.follower_plate_current_min = self.follower_plate_current_min.min(p.follower_plate_current);
+        self.follower_plate_current_min = self
+            .follower_plate_current_min
+            .min(p.follower_plate_current);
         self.newton_iterations += iterations as u64;
         if !converged {
             self.newton_failures += 1;
@@ -202,6 +208,7 @@ pub struct Engine {
     gain: Glide,
     level: Glide,
     level_countdown: usize,
+    active: [bool; 6],
     meters: Meters,
     frame: Frame,
 }
@@ -224,7 +231,9 @@ impl Engine {
         }
         for (name, v) in [("gain", settings.gain), ("level", settings.level)] {
             if !(0.0..=1.0).contains(&v) {
-                return Err(CircuitError(format!("{name} = {v}: a pot position runs from 0 to 1")));
+                return Err(CircuitError(format!(
+                    "{name} = {v}: a pot position runs from 0 to 1"
+                )));
             }
         }
         let factor = quality.factor();
@@ -248,6 +257,7 @@ impl Engine {
             gain: Glide::new(settings.gain, sample_rate),
             level: Glide::new(settings.level, sample_rate),
             level_countdown: 0,
+            active: [true; 6],
             meters: Meters::new(1.0 / (sample_rate * factor as f64)),
             frame: Frame::default(),
         };
@@ -279,6 +289,15 @@ impl Engine {
             p.positive_part_volts,
             p.negative_part_volts,
         ]
+    }
+
+    /// Decimate only these probes (each costs one anti-alias filter); the others read 0 in every `Frame`.
+    /// All probes are active after `new`.
+    pub fn set_active_probes(&mut self, probes: &[Probe]) {
+        self.active = [false; 6];
+        for p in probes {
+            self.active[p.index()] = true;
+        }
     }
 
     /// Latency in host samples added by oversampling (exact).
@@ -366,7 +385,8 @@ impl Engine {
         }
         let attenuation = self.gain_law.fraction(gain);
         let factor = self.quality.factor();
-        self.up.process(volts * attenuation, &mut self.high_in[..factor]);
+        self.up
+            .process(volts * attenuation, &mut self.high_in[..factor]);
         for k in 0..factor {
             let p = *self.stage.process(self.high_in[k]);
             let report = self.stage.last_report();
@@ -378,6 +398,9 @@ impl Engine {
         }
         let mut out = [0.0; 6];
         for (probe, o) in out.iter_mut().enumerate() {
+            if !self.active[probe] {
+                continue;
+            }
             let v = self.down[probe].process(&self.high_out[probe][..factor]);
             *o = if v.is_finite() { v } else { 0.0 };
         }
@@ -393,7 +416,11 @@ impl Engine {
     }
 
     /// Process a block, writing one probe. Output is delayed by `latency()` samples.
+    /// Only `probe` stays active afterwards (see `set_active_probes`).
     pub fn process_block(&mut self, input: &[f32], output: &mut [f32], probe: Probe) {
+        if !self.active[probe.index()] || self.active.iter().filter(|a| **a).count() > 1 {
+            self.set_active_probes(&[probe]);
+        }
         let _guard = crate::denormals::FlushGuard::new();
         for (x, y) in input.iter().zip(output.iter_mut()) {
             *y = self.process_sample(*x).get(probe) as f32;
@@ -401,7 +428,9 @@ impl Engine {
     }
 
     /// Render a whole signal offline for one probe, latency removed (output[n] lines up with input[n]).
+    /// Only `probe` stays active afterwards (see `set_active_probes`).
     pub fn render(&mut self, input: &[f32], probe: Probe) -> Vec<f32> {
+        self.set_active_probes(&[probe]);
         let latency = self.latency();
         let mut out = Vec::with_capacity(input.len());
         let _guard = crate::denormals::FlushGuard::new();

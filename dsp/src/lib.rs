@@ -13,6 +13,7 @@ pub use circuit::{Circuit, CircuitError, Placement, Settings};
 pub use stage::{Stage, StageProbe};
 pub mod denormals;
 pub mod engine;
+pub mod fastmath;
 pub mod measure;
 pub mod oversampling;
 

@@ -21,7 +21,13 @@ pub enum Quality {
 }
 
 impl Quality {
-    pub const ALL: [Quality; 5] = [Quality::X1, Quality::X2, Quality::X4, Quality::X8, Quality::X16];
+    pub const ALL: [Quality; 5] = [
+        Quality::X1,
+        Quality::X2,
+        Quality::X4,
+        Quality::X8,
+        Quality::X16,
+    ];
 
     pub fn factor(self) -> usize {
         match self {
@@ -153,7 +159,11 @@ pub struct Downsampler {
 impl Downsampler {
     pub fn new(quality: Quality) -> Self {
         let factor = quality.factor();
-        let taps = if factor == 1 { vec![1.0] } else { design(factor) };
+        let taps = if factor == 1 {
+            vec![1.0]
+        } else {
+            design(factor)
+        };
         let span = taps.len() + factor - 1;
         Downsampler {
             factor,
@@ -178,13 +188,30 @@ impl Downsampler {
         // base-rate input sample: skip the factor - 1 newer samples.
         let span = self.history.len() / 2;
         for &x in input {
-            self.pos = if self.pos == 0 { span - 1 } else { self.pos - 1 };
+            self.pos = if self.pos == 0 {
+                span - 1
+            } else {
+                self.pos - 1
+            };
             self.history[self.pos] = x;
             self.history[self.pos + span] = x;
         }
         let start = self.pos + self.factor - 1;
-        let window = &self.history[start..start + self.taps.len()];
-        self.taps.iter().zip(window).map(|(h, x)| h * x).sum()
+        let n = self.taps.len();
+        let window = &self.history[start..start + n];
+        // Linear phase: h[k] = h[n-1-k], so fold the window and halve the multiplies.
+        let half = n / 2;
+        let (head, rest) = window.split_at(half);
+        let (middle, tail) = rest.split_at(n - 2 * half);
+        let mut sum: f64 = self.taps[..half]
+            .iter()
+            .zip(head.iter().zip(tail.iter().rev()))
+            .map(|(h, (a, b))| h * (a + b))
+            .sum();
+        if let Some(m) = middle.first() {
+            sum += self.taps[half] * m;
+        }
+        sum
     }
 }
 

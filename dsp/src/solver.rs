@@ -1,3 +1,6 @@
+// Small dense matrix code: index loops mirror the maths (rows, columns) more clearly than iterators.
+#![allow(clippy::needless_range_loop)]
+
 //! Damped Newton iteration for the nonlinear ports at the root of the wave tree (K-method form):
 //! find unknowns x with v(x) = p + K i(x), where the devices give port voltages v and currents i.
 
@@ -27,6 +30,8 @@ impl<const P: usize> Default for PortEval<P> {
 pub trait RootDevices<const P: usize> {
     /// Evaluate voltages, currents and derivatives at `x` (fills every field of `out` it uses).
     fn evaluate(&self, x: &[f64; P], out: &mut PortEval<P>);
+    /// The (port, unknown) pairs where `current_dx` can be nonzero.
+    fn current_pattern(&self) -> &[(usize, usize)];
     /// Largest step per unknown in one iteration (damping).
     fn max_step(&self) -> &[f64; P];
     /// Convergence tolerance per unknown.
@@ -59,30 +64,22 @@ pub fn solve<const P: usize, D: RootDevices<P>>(
         devices.evaluate(x, eval);
         let mut residual = [0.0; P];
         let mut jacobian = eval.volts_dx;
+        let pattern = devices.current_pattern();
         for row in 0..P {
             let mut r = eval.volts[row] - p[row];
             for q in 0..P {
-                let kq = k[row][q];
-                if kq != 0.0 {
-                    r -= kq * eval.current[q];
-                    for col in 0..P {
-                        jacobian[row][col] -= kq * eval.current_dx[q][col];
-                    }
-                }
+                r -= k[row][q] * eval.current[q];
+            }
+            for &(q, col) in pattern {
+                jacobian[row][col] -= k[row][q] * eval.current_dx[q][col];
             }
             residual[row] = -r;
         }
         solve_in_place(&mut jacobian, &mut residual);
-        let mut scale = 1.0f64;
-        for i in 0..P {
-            let step = residual[i].abs();
-            if step.is_finite() && step > max_step[i] {
-                scale = scale.min(max_step[i] / step);
-            }
-        }
         let mut small = true;
         for i in 0..P {
-            let mut step = residual[i] * scale;
+            // Per-unknown limiting, as SPICE limits each junction's step.
+            let mut step = residual[i].clamp(-max_step[i], max_step[i]);
             if !step.is_finite() {
                 step = 0.0;
                 small = false;
@@ -95,12 +92,8 @@ pub fn solve<const P: usize, D: RootDevices<P>>(
         }
         if small {
             // Carry the currents through the last (tiny) step to first order.
-            for q in 0..P {
-                let mut di = 0.0;
-                for col in 0..P {
-                    di += eval.current_dx[q][col] * residual[col];
-                }
-                eval.current[q] += di;
+            for &(q, col) in devices.current_pattern() {
+                eval.current[q] += eval.current_dx[q][col] * residual[col];
             }
             report.converged = true;
             return report;

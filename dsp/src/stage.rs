@@ -121,6 +121,17 @@ impl RootDevices<PORTS> for StageDevices {
             out.current_dx[ZENER_PORT][ZENER_PORT] = point.current_ds;
         }
     }
+    fn current_pattern(&self) -> &[(usize, usize)] {
+        &[
+            (GAIN_PLATE_PORT, GAIN_PLATE_PORT),
+            (GAIN_PLATE_PORT, GAIN_GRID_PORT),
+            (GAIN_GRID_PORT, GAIN_GRID_PORT),
+            (FOLLOWER_PLATE_PORT, FOLLOWER_PLATE_PORT),
+            (FOLLOWER_PLATE_PORT, FOLLOWER_GRID_PORT),
+            (FOLLOWER_GRID_PORT, FOLLOWER_GRID_PORT),
+            (ZENER_PORT, ZENER_PORT),
+        ]
+    }
     fn max_step(&self) -> &[f64; PORTS] {
         &self.max_step
     }
@@ -149,6 +160,8 @@ pub struct Stage {
     level_law: PotLaw,
     period: f64,
     unknowns: [f64; PORTS],
+    previous_unknowns: [f64; PORTS],
+    older_unknowns: [f64; PORTS],
     eval: PortEval<PORTS>,
     last_report: NewtonReport,
     probe: StageProbe,
@@ -179,7 +192,10 @@ impl Stage {
             plate_load: ResistiveVoltageSource::new(circuit.supply_volts, g.plate_resistor),
             follower_load: Resistor::new(circuit.follower.cathode_resistor),
             coupling_feed: Series::new(
-                Series::new(Capacitor::new(c.coupling_cap), Resistor::new(c.feed_resistor)),
+                Series::new(
+                    Capacitor::new(c.coupling_cap),
+                    Resistor::new(c.feed_resistor),
+                ),
                 Resistor::new(0.0),
             ),
             level_network: Series::new(
@@ -192,7 +208,8 @@ impl Stage {
                 pairs,
                 active_pair: position.min(c.position.len().saturating_sub(1)),
                 max_step: [50.0, 5.0, 50.0, 5.0, 4.0],
-                tolerance: [1e-7, 1e-8, 1e-7, 1e-8, 1e-8],
+                // Step sizes below which Newton stops; the error left is about the square of these.
+                tolerance: [1e-3, 1e-4, 1e-3, 1e-4, 1e-3],
             },
             root: RTypeRoot::new(
                 [
@@ -206,7 +223,10 @@ impl Stage {
                 [
                     (Terminal::Node(GAIN_PLATE), Terminal::Node(GAIN_CATHODE)),
                     (Terminal::Node(GAIN_GRID), Terminal::Node(GAIN_CATHODE)),
-                    (Terminal::Fixed(circuit.supply_volts), Terminal::Node(FOLLOWER_CATHODE)),
+                    (
+                        Terminal::Fixed(circuit.supply_volts),
+                        Terminal::Node(FOLLOWER_CATHODE),
+                    ),
                     (Terminal::Node(GAIN_PLATE), Terminal::Node(FOLLOWER_CATHODE)),
                     (Terminal::Node(CLAMP_NODE), Terminal::Ground),
                 ],
@@ -216,6 +236,8 @@ impl Stage {
             level_law: c.level_pot_law,
             period: 1.0 / rate,
             unknowns: [0.0; PORTS],
+            previous_unknowns: [0.0; PORTS],
+            older_unknowns: [0.0; PORTS],
             eval: PortEval::default(),
             last_report: NewtonReport::default(),
             probe: StageProbe::default(),
@@ -263,6 +285,8 @@ impl Stage {
         let last = self.devices.pairs.len().saturating_sub(1);
         self.devices.active_pair = position.min(last);
         self.unknowns[ZENER_PORT] = 0.0;
+        self.previous_unknowns[ZENER_PORT] = 0.0;
+        self.older_unknowns[ZENER_PORT] = 0.0;
     }
 
     /// Replace the pair at `position` (for example a freely set candidate). Builds tables: not real-time safe.
@@ -294,6 +318,8 @@ impl Stage {
         self.root.update(&r);
         self.unknowns = [150.0, -1.5, 150.0, -1.0, 0.0];
         self.step(DC_ITERATIONS);
+        self.previous_unknowns = self.unknowns;
+        self.older_unknowns = self.unknowns;
         let cathode_volts = self.cathode_network.second.voltage();
         let coupling_volts = self.coupling_feed.first.first.voltage();
         self.cathode_network.second.discretise(Some(self.period));
@@ -304,6 +330,8 @@ impl Stage {
         self.root.update(&r);
         // One silent sample in transient mode to settle every wave on the new discretisation.
         self.step(DC_ITERATIONS);
+        self.previous_unknowns = self.unknowns;
+        self.older_unknowns = self.unknowns;
     }
 
     /// Advance one internal sample with `grid_source_volts` at the gain pot's wiper.
@@ -326,6 +354,21 @@ impl Stage {
         ];
         let p = self.root.open_port_voltages(&b);
         let seed = self.unknowns;
+        // Predictor: quadratic extrapolation through the last three solutions (they move smoothly), kept
+        // within a quarter of each unknown's Newton step limit of the last solution.
+        if max_iterations == MAX_ITERATIONS {
+            for k in 0..PORTS {
+                let (x0, x1, x2) = (
+                    self.unknowns[k],
+                    self.previous_unknowns[k],
+                    self.older_unknowns[k],
+                );
+                let limit = 0.25 * self.devices.max_step[k];
+                self.unknowns[k] = x0 + (2.0 * x0 - 3.0 * x1 + x2).clamp(-limit, limit);
+            }
+        }
+        self.older_unknowns = self.previous_unknowns;
+        self.previous_unknowns = seed;
         self.last_report = solver::solve(
             &self.devices,
             &self.root.port_from_current,
@@ -334,6 +377,22 @@ impl Stage {
             &mut self.eval,
             max_iterations,
         );
+        if !self.last_report.converged {
+            // Start again from the last solution without the prediction, with a larger budget.
+            self.unknowns = seed;
+            let retry = solver::solve(
+                &self.devices,
+                &self.root.port_from_current,
+                &p,
+                &mut self.unknowns,
+                &mut self.eval,
+                DC_ITERATIONS,
+            );
+            self.last_report = solver::NewtonReport {
+                iterations: self.last_report.iterations + retry.iterations,
+                converged: retry.converged,
+            };
+        }
         if !self.unknowns.iter().all(|v| v.is_finite()) {
             self.unknowns = seed;
             self.devices.evaluate(&seed, &mut self.eval);

@@ -1,6 +1,6 @@
 //! Triode: Koren plate current plus Dempwolf-Zoelzer grid current.
 
-use super::{logistic, softplus};
+use crate::fastmath;
 use serde::{Deserialize, Serialize};
 
 /// Valve types with published (or stated) Koren parameter sets.
@@ -70,7 +70,13 @@ pub struct Triode {
 
 impl Triode {
     pub const fn koren(mu: f64, ex: f64, kg1: f64, kp: f64, kvb: f64) -> Self {
-        Triode { mu, ex, kg1, kp, kvb }
+        Triode {
+            mu,
+            ex,
+            kg1,
+            kp,
+            kvb,
+        }
     }
 
     /// Plate current only (A), for readouts and tests.
@@ -78,16 +84,24 @@ impl Triode {
         self.currents(vpk, vgk).plate
     }
 
-    /// Grid current Ig = Gg (ln(1 + exp(Cg Vgk)) / Cg)^xi + Ig0 (Dempwolf and Zoelzer, DAFx-11).
+    /// Grid current Ig = Gg (ln(1 + exp(Cg Vgk)) / Cg)^xi + Ig0 (Dempwolf and Zoelzer, DAFx-11), and dIg/dVgk.
+    #[inline]
     pub fn grid_current(vgk: f64) -> (f64, f64) {
         let z = GRID_CG * vgk;
-        let base = softplus(z) / GRID_CG;
-        if base <= 0.0 {
-            return (GRID_IG0, 0.0);
+        if z < -10.0 {
+            // Far below conduction ln(1 + e^z) = e^z to 2e-5 relative, so the power needs one exponential;
+            // the current here is below 1e-12 A.
+            let powed = fastmath::exp(GRID_XI * (z - GRID_CG.ln()));
+            return (
+                GRID_GG * powed + GRID_IG0,
+                GRID_GG * GRID_XI * powed * GRID_CG,
+            );
         }
-        let powed = base.powf(GRID_XI);
+        let (sp, sigma) = fastmath::softplus_logistic(z);
+        let base = sp / GRID_CG;
+        let powed = fastmath::powf(base, GRID_XI);
         let current = GRID_GG * powed + GRID_IG0;
-        let slope = GRID_GG * GRID_XI * powed / base * logistic(z);
+        let slope = GRID_GG * GRID_XI * powed / base * sigma;
         (current, slope)
     }
 
@@ -105,13 +119,12 @@ impl Triode {
         }
         let root = (self.kvb + vpk * vpk).sqrt();
         let z = self.kp * (1.0 / self.mu + vgk / root);
-        let sp = softplus(z);
+        let (sp, sigma) = fastmath::softplus_logistic(z);
         let e1 = vpk / self.kp * sp;
         if e1 <= 0.0 {
             return out;
         }
-        let sigma = logistic(z);
-        let powed = e1.powf(self.ex);
+        let powed = fastmath::powf(e1, self.ex);
         out.plate = 2.0 * powed / self.kg1;
         let dip_de1 = 2.0 * self.ex * powed / (e1 * self.kg1);
         let de1_dvgk = vpk * sigma / root;

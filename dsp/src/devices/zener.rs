@@ -6,6 +6,9 @@ pub const THERMAL_VOLTAGE: f64 = 0.025852;
 pub const SATURATION_CURRENT: f64 = 1e-14;
 /// Current scale of the asinh map used by the junction tables (A).
 pub const CURRENT_SCALE: f64 = 1e-12;
+/// Conductance across each junction (S), as SPICE puts across every pn junction (GMIN, 1e12 ohm), and as the
+/// ngspice reference netlists do. It sets the pair's leakage while both parts are off.
+pub const JUNCTION_GMIN: f64 = 1e-12;
 /// Exponent above which the junction exponentials continue linearly (as the ngspice reference does).
 const FORWARD_LIMIT_VOLTS: f64 = 1.0;
 const BREAKDOWN_EXPONENT_LIMIT: f64 = 12.0;
@@ -20,7 +23,8 @@ pub struct ZenerDatasheet {
     pub zzk: f64,
 }
 
-/// Zener, Ij = Is (exp(Vj/Vt) - 1) - Izt (exp(-(Vj + Vzj)/(nbv Vt)) - exp(-Vzj/(nbv Vt))), V = Vj + rs I (BRIEF s. 4).
+/// Zener, Ij = Is (exp(Vj/Vt) - 1) - Izt (exp(-(Vj + Vzj)/(nbv Vt)) - exp(-Vzj/(nbv Vt))) + GMIN Vj, V = Vj + rs I
+/// (BRIEF section 4; GMIN as in SPICE).
 #[derive(Clone, Copy, Debug, PartialEq)]
 pub struct Zener {
     /// Breakdown voltage at the test current (V).
@@ -80,8 +84,8 @@ impl Zener {
         };
         let zero_bias = (-self.vzj / nvt).exp();
         (
-            fwd - self.izt * (brk - zero_bias),
-            dfwd - self.izt * dbrk,
+            fwd - self.izt * (brk - zero_bias) + JUNCTION_GMIN * vj,
+            dfwd - self.izt * dbrk + JUNCTION_GMIN,
         )
     }
 
@@ -171,7 +175,10 @@ impl JunctionTable {
         let pos = (s - self.start) * self.inv_step;
         let last = self.volts.len() - 1;
         if pos <= 0.0 {
-            return (self.volts[0] + (s - self.start) * self.slope[0], self.slope[0]);
+            return (
+                self.volts[0] + (s - self.start) * self.slope[0],
+                self.slope[0],
+            );
         }
         if pos >= last as f64 {
             let end = self.start + last as f64 * self.step;
@@ -258,8 +265,7 @@ impl ZenerPair {
     /// The positive part carries -I anode to cathode, the negative part +I; V = Vneg(I) - Vpos(-I).
     #[inline]
     pub fn at(&self, s: f64) -> PairPoint {
-        let sinh = s.sinh();
-        let cosh = (1.0 + sinh * sinh).sqrt();
+        let (sinh, cosh) = crate::fastmath::sinh_cosh(s);
         let current = CURRENT_SCALE * sinh;
         let current_ds = CURRENT_SCALE * cosh;
         let mut point = PairPoint {

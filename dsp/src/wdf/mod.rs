@@ -5,7 +5,7 @@
 mod elements;
 pub mod root;
 
-pub use elements::{Capacitor, Parallel, Resistor, ResistiveVoltageSource, Series, WaveElement};
+pub use elements::{Capacitor, Parallel, ResistiveVoltageSource, Resistor, Series, WaveElement};
 pub use root::{RTypeRoot, Terminal};
 
 /// Port resistance that stands for an open circuit (ohm): a capacitor at DC.

@@ -1,3 +1,6 @@
+// Small dense matrix code: index loops mirror the maths (rows, columns) more clearly than iterators.
+#![allow(clippy::needless_range_loop)]
+
 /// One end of a root port: ground, one of the root's nodes (1-based), or a fixed voltage (an ideal supply).
 #[derive(Clone, Copy, Debug, PartialEq)]
 pub enum Terminal {
@@ -226,7 +229,8 @@ mod tests {
     #[test]
     fn divider_with_current_port() {
         // Node 1 fed by a 10 V source through 1 k, 1 k to ground: open voltage 5 V, Thevenin 500 ohm.
-        let mut root = RTypeRoot::<1, 2, 1>::new([(1, 0), (1, 0)], [(Terminal::Node(1), Terminal::Ground)]);
+        let mut root =
+            RTypeRoot::<1, 2, 1>::new([(1, 0), (1, 0)], [(Terminal::Node(1), Terminal::Ground)]);
         root.update(&[1e3, 1e3]);
         let p = root.open_port_voltages(&[10.0, 0.0]);
         assert!((p[0] - 5.0).abs() < 1e-12);
