@@ -7,8 +7,8 @@ use crate::pot::PotLaw;
 use serde::{Deserialize, Serialize};
 use std::fmt;
 
-/// Built-in reference circuit (BRIEF section 3), the same text shipped as `presets-demo/reference.toml`.
-pub const REFERENCE_TOML: &str = include_str!("reference_circuit.toml");
+/// Built-in reference circuit (BRIEF section 3), read from `presets-demo/reference-circuit.toml`.
+pub const REFERENCE_TOML: &str = include_str!("../../presets-demo/reference-circuit.toml");
 
 /// A problem with a circuit file or a setting, with a message a builder can act on.
 #[derive(Clone, Debug, PartialEq)]
@@ -173,7 +173,9 @@ impl ZenerSpec {
                 "{what}: give all four knee figures (izt, zzt, izk, zzk) or none (then the 1N47xxA table is used)"
             )));
         }
-        if let (Some(izt), Some(zzt), Some(izk), Some(zzk)) = (self.izt, self.zzt, self.izk, self.zzk) {
+        if let (Some(izt), Some(zzt), Some(izk), Some(zzk)) =
+            (self.izt, self.zzt, self.izk, self.zzk)
+        {
             check_range(what, "izt", izt, 1e-6, 1.0)?;
             check_range(what, "izk", izk, 1e-7, 1.0)?;
             check_range(what, "zzt", zzt, 0.01, 1e5)?;
@@ -230,19 +232,43 @@ impl Circuit {
     /// Check every value against its physical range.
     pub fn validate(&self) -> Result<(), CircuitError> {
         check_range("circuit", "supply_volts", self.supply_volts, 20.0, 1000.0)?;
-        check_range("drive", "volts_at_full_scale", self.drive.volts_at_full_scale, 1e-3, 100.0)?;
+        check_range(
+            "drive",
+            "volts_at_full_scale",
+            self.drive.volts_at_full_scale,
+            1e-3,
+            100.0,
+        )?;
         let g = &self.gain_stage;
         check_range("gain_stage", "grid_stopper", g.grid_stopper, 1.0, 10e6)?;
         check_range("gain_stage", "plate_resistor", g.plate_resistor, 1e3, 10e6)?;
-        check_range("gain_stage", "cathode_resistor", g.cathode_resistor, 10.0, 1e6)?;
+        check_range(
+            "gain_stage",
+            "cathode_resistor",
+            g.cathode_resistor,
+            10.0,
+            1e6,
+        )?;
         check_range("gain_stage", "cathode_bypass", g.cathode_bypass, 0.0, 0.1)?;
-        check_range("follower", "cathode_resistor", self.follower.cathode_resistor, 1e3, 10e6)?;
+        check_range(
+            "follower",
+            "cathode_resistor",
+            self.follower.cathode_resistor,
+            1e3,
+            10e6,
+        )?;
         let c = &self.clamp;
         check_range("clamp", "coupling_cap", c.coupling_cap, 1e-12, 1e-3)?;
         check_range("clamp", "feed_resistor", c.feed_resistor, 1.0, 10e6)?;
         check_range("clamp", "level_pot", c.level_pot, 1e3, 10e6)?;
         check_range("clamp", "load_resistor", c.load_resistor, 1e3, 1e9)?;
-        check_range("listen", "volts_at_full_scale", self.listen.volts_at_full_scale, 1e-3, 1000.0)?;
+        check_range(
+            "listen",
+            "volts_at_full_scale",
+            self.listen.volts_at_full_scale,
+            1e-3,
+            1000.0,
+        )?;
         if c.position.is_empty() {
             return Err(CircuitError(
                 "clamp: the switch needs at least one [[clamp.position]]".into(),
@@ -251,7 +277,9 @@ impl Circuit {
         let mut names: Vec<&str> = Vec::new();
         for (index, p) in c.position.iter().enumerate() {
             if p.name.trim().is_empty() {
-                return Err(CircuitError(format!("clamp.position[{index}]: the name is empty")));
+                return Err(CircuitError(format!(
+                    "clamp.position[{index}]: the name is empty"
+                )));
             }
             if names.contains(&p.name.as_str()) {
                 return Err(CircuitError(format!(
@@ -315,7 +343,9 @@ impl Settings {
     /// Apply `name=value` (gain, level, position), naming the problem on a bad key or value.
     pub fn set(&mut self, assignment: &str) -> Result<(), CircuitError> {
         let (key, value) = assignment.split_once('=').ok_or_else(|| {
-            CircuitError(format!("--set '{assignment}': expected name=value, e.g. gain=0.8"))
+            CircuitError(format!(
+                "--set '{assignment}': expected name=value, e.g. gain=0.8"
+            ))
         })?;
         let key = key.trim();
         let value = value.trim();
