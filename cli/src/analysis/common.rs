@@ -195,7 +195,38 @@ pub fn run_with(engine: &mut Engine, stimulus: &Stimulus) -> Outcome {
 /// Render once on a fresh engine at the stimulus's rate.
 pub fn run(rig: &Rig, stimulus: &Stimulus) -> Result<Outcome, String> {
     let mut engine = rig.engine_at(stimulus.rate)?;
-    Ok(run_with(&mut engine, stimulus))
+    checked(rig, run_with(&mut engine, stimulus))
+}
+
+/// The outcome, or a clear error when the model's readouts are not finite (the solver diverged).
+pub fn checked(rig: &Rig, o: Outcome) -> Result<Outcome, String> {
+    let m = &o.meters;
+    let finite = [
+        m.clamp_peak_positive,
+        m.clamp_peak_negative,
+        m.zener_peak_current,
+        m.positive_part_energy,
+        m.negative_part_energy,
+        o.wiper_rms,
+    ]
+    .iter()
+    .all(|v| v.is_finite() && v.abs() < 1e6);
+    if finite {
+        Ok(o)
+    } else {
+        let (p, n) = rig.pair_specs();
+        let part = |z: Option<breakdown_dsp::circuit::ZenerSpec>| {
+            z.map_or("none".to_string(), |z| format!("{} V", z.volts))
+        };
+        Err(format!(
+            "the model did not settle (non-finite readings) at gain {}, position '{}' (parts {} / {}); \
+             this is a model fault, please report it with the command line",
+            rig.settings.gain,
+            rig.position_name(),
+            part(p),
+            part(n)
+        ))
+    }
 }
 
 /// Run `jobs` over two worker threads (the machine has two cores), keeping the order of results.

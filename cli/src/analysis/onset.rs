@@ -24,7 +24,7 @@
 //! at the lowest input level at that gain (scanning the row from the quietest cell up); ties in the same cell
 //! go to the one listed first above.
 
-use super::common::{lin_space, log_space, parallel, run_with, Outcome, Rig, Stimulus};
+use super::common::{checked, lin_space, log_space, parallel, run_with, Outcome, Rig, Stimulus};
 use breakdown_dsp::devices::Triode;
 use breakdown_dsp::engine::CLAMPED_CURRENT;
 use breakdown_dsp::StageProbe;
@@ -278,15 +278,19 @@ fn assign_first(row: &mut [Cell]) {
 pub fn map(rig: &Rig, sweep: &Sweep) -> Result<OnsetMap, String> {
     let criteria = criteria_for(rig)?;
     let rows = parallel(sweep.gains.clone(), |gain| -> Result<Vec<Cell>, String> {
-        let mut engine = rig.with_gain(gain).engine()?;
-        Ok(sweep
+        let row_rig = rig.with_gain(gain);
+        let mut engine = row_rig.engine()?;
+        sweep
             .levels
             .iter()
             .map(|&v| {
-                let o = run_with(&mut engine, &Stimulus::burst(v, sweep.tone_hz));
-                cell_of(gain, v, &o, &criteria)
+                let o = checked(
+                    &row_rig,
+                    run_with(&mut engine, &Stimulus::burst(v, sweep.tone_hz)),
+                )?;
+                Ok(cell_of(gain, v, &o, &criteria))
             })
-            .collect())
+            .collect()
     });
     let mut cells = Vec::with_capacity(rows.len());
     for r in rows {
@@ -412,28 +416,35 @@ pub fn to_svg(m: &OnsetMap, title: &str) -> Result<String, String> {
             .margin(10)
             .x_label_area_size(45)
             .y_label_area_size(55)
-            .build_cartesian_2d(0f64..nx as f64, 0f64..ny as f64)
+            .build_cartesian_2d(-0.5f64..nx as f64 - 0.5, -0.5f64..ny as f64 - 0.5)
             .map_err(|e| e.to_string())?;
         chart
             .configure_mesh()
             .disable_mesh()
             .x_desc("input level, peak volts at the jack")
             .y_desc("gain pot rotation")
-            .x_labels(nx.min(8))
-            .y_labels(ny.min(10))
+            .x_labels(nx + 1)
+            .y_labels(ny + 1)
+            // Cells are centred on whole numbers, so each tick names the cell under it.
             .x_label_formatter(&|x| {
-                let i = (x.floor() as usize).min(levels.len() - 1);
+                if (x - x.round()).abs() > 1e-6 || *x < -0.01 {
+                    return String::new();
+                }
+                let i = (x.round() as usize).min(levels.len() - 1);
                 format!("{:.3}", levels[i])
             })
             .y_label_formatter(&|y| {
-                let i = (y.floor() as usize).min(gains.len() - 1);
+                if (y - y.round()).abs() > 1e-6 || *y < -0.01 {
+                    return String::new();
+                }
+                let i = (y.round() as usize).min(gains.len() - 1);
                 format!("{:.2}", gains[i])
             })
             .draw()
             .map_err(|e| e.to_string())?;
         for (gi, row) in m.cells.iter().enumerate() {
             for (li, c) in row.iter().enumerate() {
-                let (x0, y0) = (li as f64, gi as f64);
+                let (x0, y0) = (li as f64 - 0.5, gi as f64 - 0.5);
                 chart
                     .draw_series(std::iter::once(Rectangle::new(
                         [(x0, y0), (x0 + 1.0, y0 + 1.0)],

@@ -464,3 +464,44 @@ fn parts_list_names_family_parts_orientation_and_ratings() {
     let text = super::partslist::to_text(&lines, worst);
     assert!(text.contains("1N4734A")); // the 5.6 V row
 }
+
+#[test]
+fn before_valve_suggestion_clamps_before_any_valve_limits() {
+    // Checked on a ladder of direct per-sample renders (stage readouts, not the meters or onset search):
+    // with the suggested pair in place the Zeners must conduct at a lower input level than any valve limits.
+    let gain = 0.8;
+    let r = rig(1, gain, Quality::X2);
+    let s = Stimulus::sustained(0.5, 1000.0);
+    let out = suggest::suggest(&r, &s, &FAMILY_1N47XXA, Goal::BeforeValve, 1000.0).unwrap();
+    let best = &out.candidates[0];
+    assert!(best.meets, "{}", best.note);
+    let circuit = circuit_from_variant(&suggest::variant_toml(best));
+    let with = Rig::new(
+        circuit.clone(),
+        Settings {
+            gain,
+            level: 0.5,
+            position: circuit.clamp.position.len() - 1,
+        },
+        Quality::X1,
+    )
+    .unwrap();
+    let criteria = onset::criteria_for(&with).unwrap();
+    let ladder = super::common::log_space(0.2, 10.0, 40);
+    let first = |which: &dyn Fn(&[bool; 4]) -> bool| {
+        ladder
+            .iter()
+            .position(|&v| which(&direct_flags(&with, gain, v, &criteria)))
+            .unwrap_or(usize::MAX)
+    };
+    let zener = first(&|f| f[0]);
+    let valve = first(&|f| f[1] || f[2] || f[3]);
+    assert!(
+        zener < ladder.len(),
+        "the pair never conducts on the ladder"
+    );
+    assert!(
+        zener < valve,
+        "Zeners from step {zener}, valves from step {valve}"
+    );
+}

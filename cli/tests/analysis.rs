@@ -1,0 +1,126 @@
+//! The analysis commands as a builder runs them: outputs written, one clear error and a non-zero exit on bad
+//! input, never a panic.
+
+use std::process::Command;
+
+fn breakdown(args: &[&str]) -> (bool, String, String) {
+    let out = Command::new(env!("CARGO_BIN_EXE_breakdown"))
+        .args(args)
+        .output()
+        .expect("the binary runs");
+    (
+        out.status.success(),
+        String::from_utf8_lossy(&out.stdout).into_owned(),
+        String::from_utf8_lossy(&out.stderr).into_owned(),
+    )
+}
+
+fn temp_dir(name: &str) -> std::path::PathBuf {
+    let d = std::env::temp_dir().join(format!("breakdown-analysis-{name}-{}", std::process::id()));
+    let _ = std::fs::remove_dir_all(&d);
+    d
+}
+
+#[test]
+fn onset_writes_map_and_summary() {
+    let dir = temp_dir("onset");
+    let (ok, out, err) = breakdown(&[
+        "onset",
+        "--out",
+        dir.to_str().unwrap(),
+        "--gain-steps",
+        "3",
+        "--level-steps",
+        "4",
+        "--quality",
+        "1",
+    ]);
+    assert!(ok, "{err}");
+    assert!(out.contains("cleans up below"), "{out}");
+    assert!(out.contains("Safety"));
+    let csv = std::fs::read_to_string(dir.join("onset.csv")).unwrap();
+    assert_eq!(csv.lines().count(), 1 + 3 * 4);
+    let svg = std::fs::read_to_string(dir.join("onset.svg")).unwrap();
+    assert!(svg.starts_with("<svg") && svg.contains("</svg>"));
+    let _ = std::fs::remove_dir_all(&dir);
+}
+
+#[test]
+fn parts_writes_text_and_csv_with_cautions() {
+    let dir = temp_dir("parts");
+    let (ok, out, err) = breakdown(&[
+        "parts",
+        "--set",
+        "position=2",
+        "--out",
+        dir.to_str().unwrap(),
+    ]);
+    assert!(ok, "{err}");
+    assert!(out.contains("1N4746A") && out.contains("1N4734A"), "{out}");
+    assert!(out.contains("drain and verify capacitors"));
+    assert!(dir.join("parts.csv").exists() && dir.join("parts.txt").exists());
+    let _ = std::fs::remove_dir_all(&dir);
+}
+
+#[test]
+fn bad_inputs_get_one_clear_error() {
+    let cases: &[(&[&str], &str)] = &[
+        (
+            &["suggest", "--goal", "clamp=+20,-20"],
+            "--di FILE or --input-volts",
+        ),
+        (
+            &["suggest", "--goal", "loud", "--input-volts", "1"],
+            "expected clamp=",
+        ),
+        (
+            &["suggest", "--goal", "share=2", "--input-volts", "1"],
+            "between 0 and 1",
+        ),
+        (
+            &[
+                "suggest",
+                "--goal",
+                "clamp=+90,-90",
+                "--input-volts",
+                "1",
+                "--set",
+                "gain=0.8",
+            ],
+            "swings only",
+        ),
+        (
+            &[
+                "suggest",
+                "--goal",
+                "share=0.2",
+                "--di",
+                "/nonexistent/di.wav",
+            ],
+            "cannot open",
+        ),
+        (
+            &[
+                "suggest",
+                "--goal",
+                "share=0.2",
+                "--input-volts",
+                "1",
+                "--family",
+                "x",
+            ],
+            "known families",
+        ),
+        (&["onset", "--quality", "3"], "--quality 3"),
+        (&["onset", "--set", "position=9"], "past the end"),
+        (&["parts", "--input-volts=-1"], "--input-volts"),
+        (&["parts", "--rating-watts", "0"], "--rating-watts"),
+    ];
+    for (args, needle) in cases {
+        let (ok, _, err) = breakdown(args);
+        assert!(!ok, "{args:?} should fail");
+        assert!(err.contains(needle), "{args:?}: {err}");
+        assert!(!err.contains("panicked"), "{args:?}: {err}");
+        assert_eq!(err.trim().lines().count(), 1, "{args:?}: {err}");
+    }
+}
