@@ -3,7 +3,7 @@
 use super::plan::Variant;
 use crate::report::ToneResult;
 use breakdown_dsp::measure::{self, Distortion};
-use breakdown_dsp::Engine;
+use breakdown_dsp::{Engine, Probe};
 
 /// Test tone frequency (Hz), sample rate (Hz), length and the analysed tail (s): the start is left out so the
 /// coupling and bypass capacitors have settled.
@@ -69,6 +69,7 @@ pub fn run(
     let amplitude = tone_peak_volts / volts_at_full_scale;
     let total = (TONE_SECONDS * TONE_RATE) as usize;
     let analysed = (ANALYSED_SECONDS * TONE_RATE) as usize;
+    engine.set_active_probes(&[Probe::Wiper]);
     let latency = engine.latency();
     let _flush = breakdown_dsp::denormals::FlushGuard::new();
     let mut wiper = Vec::with_capacity(analysed);
