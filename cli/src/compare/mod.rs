@@ -474,7 +474,10 @@ pub fn run_plan(plan_path: &Path, options: Options) -> Result<Outcome, String> {
     let plan = plan::load(plan_path, options.output.as_deref())?;
     let inputs = read_inputs(&plan)?;
     let mut variants = variant_infos(&plan)?;
-    check_output(&plan.output)?;
+    check_output(&plan.output).map_err(|e| match plan.output_line {
+        Some(line) => format!("{} line {line}: {e}", plan.path.display()),
+        None => e,
+    })?;
     if options.jobs == Some(0) {
         return Err("--jobs 0: give at least one worker thread".into());
     }

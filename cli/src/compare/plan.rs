@@ -161,6 +161,8 @@ pub struct Plan {
     /// "built-in reference circuit" or the circuit file's path.
     pub circuit_label: String,
     pub output: PathBuf,
+    /// Where the plan names the output folder (None when it was given on the command line).
+    pub output_line: Option<usize>,
     pub target_lufs: f64,
     pub volts_at_full_scale: f64,
     pub tone_peak_volts: f64,
@@ -171,7 +173,11 @@ pub struct Plan {
 
 /// 1-based line of a byte offset.
 pub fn line_of(text: &str, offset: usize) -> usize {
-    text[..offset.min(text.len())].matches('\n').count() + 1
+    text.as_bytes()[..offset.min(text.len())]
+        .iter()
+        .filter(|b| **b == b'\n')
+        .count()
+        + 1
 }
 
 struct Ctx<'a> {
@@ -287,7 +293,10 @@ pub fn parse(path: &Path, text: &str, output_override: Option<&Path>) -> Result<
         text,
     };
     let raw: RawPlan = toml::from_str(text).map_err(|e| {
-        let message = e.message().trim().to_string();
+        let mut message = e.message().trim().to_string();
+        if message.contains("expected a sequence") {
+            message.push_str(" (write a list, e.g. di = [\"take.wav\"])");
+        }
         match e.span() {
             Some(span) => ctx.at(span, message),
             None => format!("{}: {message}", ctx.shown),
@@ -584,6 +593,9 @@ pub fn parse(path: &Path, text: &str, output_override: Option<&Path>) -> Result<
         di,
         circuit_label,
         output,
+        output_line: output_override
+            .is_none()
+            .then(|| ctx.line(&raw.output.span())),
         target_lufs,
         volts_at_full_scale,
         tone_peak_volts,
