@@ -186,8 +186,9 @@ impl Plugin for Breakdown {
     }
 
     fn reset(&mut self) {
+        let controls = controls_from(&self.params);
         if let Some(p) = self.processor.as_mut() {
-            p.reset();
+            p.reset(&controls);
         }
     }
 

@@ -376,6 +376,9 @@ pub struct Processor {
     match_coeff: f64,
     latency: u32,
     meter_countdown: usize,
+    /// Set by `reset`: the first block starts at rest at its own control values (hosts often deliver the
+    /// parameter values of a fresh start in the first block rather than before it).
+    fresh: bool,
     worker: Arc<Worker>,
     shared: Arc<Shared>,
 }
@@ -437,6 +440,7 @@ impl Processor {
             match_coeff: 1.0 - (-1.0 / (MATCH_GLIDE_SECONDS * sample_rate)).exp(),
             latency,
             meter_countdown: 0,
+            fresh: true,
             worker,
             shared,
         };
@@ -462,22 +466,31 @@ impl Processor {
         self.sample_rate
     }
 
-    /// Back to the operating point with silent history (real-time safe).
-    pub fn reset(&mut self) {
+    /// Back to the operating point of `controls` with silent history, no glides pending (real-time safe).
+    pub fn reset(&mut self, controls: &Controls) {
         for slot in self.slots.iter_mut() {
-            for e in slot.current.engines.iter_mut() {
+            let engines = slot
+                .current
+                .engines
+                .iter_mut()
+                .chain(slot.next.iter_mut().flat_map(|n| n.engines.iter_mut()));
+            for e in engines {
+                e.set_gain(controls.gain);
+                e.set_level(controls.level);
                 e.reset();
-            }
-            if let Some(next) = slot.next.as_mut() {
-                for e in next.engines.iter_mut() {
-                    e.reset();
-                }
             }
             slot.loudness.reset();
             slot.out = [(0.0, 0.0); 2];
         }
+        self.heard = controls.heard.min(SLOTS - 1);
         self.previous = self.heard;
         self.heard_fade = self.fade_len;
+        self.listen_mix = if controls.listen_clamp { 1.0 } else { 0.0 };
+        if controls.calibration.is_finite() && controls.calibration > 0.0 {
+            self.calibration = controls.calibration;
+        }
+        self.trim = db_to_gain(controls.trim_db);
+        self.fresh = true;
     }
 
     fn publish_pair(&self, slot: usize) {
@@ -536,6 +549,10 @@ impl Processor {
     /// mono model feeds all output channels).
     pub fn process(&mut self, controls: &Controls, channels: &mut [&mut [f32]]) -> BlockActions {
         let mut actions = BlockActions::default();
+        if self.fresh {
+            self.reset(controls);
+            self.fresh = false;
+        }
         self.exchange(controls, &mut actions);
         if channels.is_empty() {
             return actions;

@@ -215,7 +215,7 @@ fn level_match_brings_positions_to_the_same_loudness() {
     // With the level match on, each position's output has the same short-term loudness as measured by an
     // independent BS.1770 implementation (ebur128 crate); tolerance 0.5 LU.
     let rate = 48_000.0;
-    let n = (rate * 8.0) as usize;
+    let n = (rate * 6.0) as usize;
     let input: Vec<f32> = (0..n)
         .map(|k| (0.5 * (2.0 * std::f64::consts::PI * 220.0 * k as f64 / rate).sin()) as f32)
         .collect();
