@@ -15,6 +15,7 @@ fn main() {
             },
         )
         .unwrap();
+        e.set_active_probes(&[breakdown_dsp::Probe::Listen]);
         let secs: usize = std::env::args()
             .nth(1)
             .map(|s| s.parse().unwrap())

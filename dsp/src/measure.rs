@@ -20,7 +20,9 @@ pub fn tone_amplitude(signal: &[f64], rate: f64, freq: f64) -> f64 {
 pub fn harmonic_amplitudes(signal: &[f64], rate: f64, fundamental: f64, count: usize) -> Vec<f64> {
     let period = rate / fundamental;
     let periods = (signal.len() as f64 / period).floor();
-    let len = ((periods * period).round() as usize).min(signal.len()).max(1);
+    let len = ((periods * period).round() as usize)
+        .min(signal.len())
+        .max(1);
     let used = &signal[signal.len() - len..];
     (1..=count)
         .map(|h| {
@@ -49,8 +51,16 @@ pub struct Distortion {
 }
 
 /// THD_F of a steady tone at `fundamental` Hz using harmonics 2..=`harmonics` below `band_hz`.
-pub fn distortion(signal: &[f64], rate: f64, fundamental: f64, harmonics: usize, band_hz: f64) -> Distortion {
-    let count = harmonics.min((band_hz.min(rate / 2.0) / fundamental).floor() as usize).max(1);
+pub fn distortion(
+    signal: &[f64],
+    rate: f64,
+    fundamental: f64,
+    harmonics: usize,
+    band_hz: f64,
+) -> Distortion {
+    let count = harmonics
+        .min((band_hz.min(rate / 2.0) / fundamental).floor() as usize)
+        .max(1);
     let amps = harmonic_amplitudes(signal, rate, fundamental, count);
     let fundamental_amplitude = amps[0];
     let (mut even, mut odd) = (0.0, 0.0);

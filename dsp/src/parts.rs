@@ -145,8 +145,8 @@ pub const FAMILY_1N52XXB: Family = Family {
 
 /// E24 preferred-number mantissas (IEC 60063).
 pub const E24: [f64; 24] = [
-    1.0, 1.1, 1.2, 1.3, 1.5, 1.6, 1.8, 2.0, 2.2, 2.4, 2.7, 3.0, 3.3, 3.6, 3.9, 4.3, 4.7, 5.1, 5.6, 6.2,
-    6.8, 7.5, 8.2, 9.1,
+    1.0, 1.1, 1.2, 1.3, 1.5, 1.6, 1.8, 2.0, 2.2, 2.4, 2.7, 3.0, 3.3, 3.6, 3.9, 4.3, 4.7, 5.1, 5.6,
+    6.2, 6.8, 7.5, 8.2, 9.1,
 ];
 
 /// E24 values (IEC 60063) from `low` to `high` inclusive.
@@ -205,7 +205,10 @@ impl Family {
         if volts >= last.volts {
             return ZenerDatasheet { volts, ..last };
         }
-        let upper = rows.iter().position(|r| r.sheet.volts > volts).unwrap_or(rows.len() - 1);
+        let upper = rows
+            .iter()
+            .position(|r| r.sheet.volts > volts)
+            .unwrap_or(rows.len() - 1);
         let (a, b) = (rows[upper - 1].sheet, rows[upper].sheet);
         let t = (volts / a.volts).ln() / (b.volts / a.volts).ln();
         let lerp = |x: f64, y: f64| (x.ln() + t * (y.ln() - x.ln())).exp();
@@ -245,9 +248,17 @@ mod tests {
             assert!(w[1].sheet.volts > w[0].sheet.volts);
         }
         for r in rows {
-            assert!(r.sheet.izk < r.sheet.izt && r.sheet.zzk > r.sheet.zzt, "{}", r.part_number);
+            assert!(
+                r.sheet.izk < r.sheet.izt && r.sheet.zzk > r.sheet.zzt,
+                "{}",
+                r.part_number
+            );
             let z = crate::devices::Zener::fit(&r.sheet);
-            assert!(z.nbv > 0.0 && z.rs >= 0.0 && z.nbv.is_finite(), "{}", r.part_number);
+            assert!(
+                z.nbv > 0.0 && z.rs >= 0.0 && z.nbv.is_finite(),
+                "{}",
+                r.part_number
+            );
         }
     }
 }

@@ -31,7 +31,7 @@ pub trait RootDevices<const P: usize> {
     /// Evaluate voltages, currents and derivatives at `x` (fills every field of `out` it uses).
     fn evaluate(&self, x: &[f64; P], out: &mut PortEval<P>);
     /// The (port, unknown) pairs where `current_dx` can be nonzero.
-    fn current_pattern(&self) -> &[(usize, usize)];
+    const PATTERN: &'static [(usize, usize)];
     /// Largest step per unknown in one iteration (damping).
     fn max_step(&self) -> &[f64; P];
     /// Convergence tolerance per unknown.
@@ -64,7 +64,7 @@ pub fn solve<const P: usize, D: RootDevices<P>>(
         devices.evaluate(x, eval);
         let mut residual = [0.0; P];
         let mut jacobian = eval.volts_dx;
-        let pattern = devices.current_pattern();
+        let pattern = D::PATTERN;
         for row in 0..P {
             let mut r = eval.volts[row] - p[row];
             for q in 0..P {
@@ -92,7 +92,7 @@ pub fn solve<const P: usize, D: RootDevices<P>>(
         }
         if small {
             // Carry the currents through the last (tiny) step to first order.
-            for &(q, col) in devices.current_pattern() {
+            for &(q, col) in D::PATTERN {
                 eval.current[q] += eval.current_dx[q][col] * residual[col];
             }
             report.converged = true;

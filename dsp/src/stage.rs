@@ -121,17 +121,15 @@ impl RootDevices<PORTS> for StageDevices {
             out.current_dx[ZENER_PORT][ZENER_PORT] = point.current_ds;
         }
     }
-    fn current_pattern(&self) -> &[(usize, usize)] {
-        &[
-            (GAIN_PLATE_PORT, GAIN_PLATE_PORT),
-            (GAIN_PLATE_PORT, GAIN_GRID_PORT),
-            (GAIN_GRID_PORT, GAIN_GRID_PORT),
-            (FOLLOWER_PLATE_PORT, FOLLOWER_PLATE_PORT),
-            (FOLLOWER_PLATE_PORT, FOLLOWER_GRID_PORT),
-            (FOLLOWER_GRID_PORT, FOLLOWER_GRID_PORT),
-            (ZENER_PORT, ZENER_PORT),
-        ]
-    }
+    const PATTERN: &'static [(usize, usize)] = &[
+        (GAIN_PLATE_PORT, GAIN_PLATE_PORT),
+        (GAIN_PLATE_PORT, GAIN_GRID_PORT),
+        (GAIN_GRID_PORT, GAIN_GRID_PORT),
+        (FOLLOWER_PLATE_PORT, FOLLOWER_PLATE_PORT),
+        (FOLLOWER_PLATE_PORT, FOLLOWER_GRID_PORT),
+        (FOLLOWER_GRID_PORT, FOLLOWER_GRID_PORT),
+        (ZENER_PORT, ZENER_PORT),
+    ];
     fn max_step(&self) -> &[f64; PORTS] {
         &self.max_step
     }
