@@ -349,6 +349,7 @@ pub fn run(args: DemoArgs) -> Result<(), String> {
                     DEMO_PLAN.as_bytes().to_vec(),
                 ),
             ],
+            plan_label: Some("built-in demo plan (copy in input/demo-plan.toml)".into()),
         },
     )?;
     compare::print_summary(&outcome);
@@ -418,6 +419,7 @@ fn bench(args: &DemoArgs) -> Result<(), String> {
             jobs: args.jobs,
             quiet: args.quiet,
             extra_files: Vec::new(),
+            plan_label: None,
         },
     )?;
     let variant_seconds = seconds * 2.0 * outcome.report.variants.len() as f64;

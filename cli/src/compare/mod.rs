@@ -55,6 +55,8 @@ pub struct Options {
     pub quiet: bool,
     /// Extra files to place in the output (relative path, contents), e.g. the demo's inputs.
     pub extra_files: Vec<(PathBuf, Vec<u8>)>,
+    /// How the report names the plan (default: its path).
+    pub plan_label: Option<String>,
 }
 
 /// What a finished run produced.
@@ -73,6 +75,7 @@ pub fn run(args: CompareArgs) -> Result<(), String> {
         jobs: args.jobs,
         quiet: args.quiet,
         extra_files: Vec::new(),
+        plan_label: None,
     };
     let outcome = run_plan(&args.plan, options)?;
     print_summary(&outcome);
@@ -703,7 +706,10 @@ pub fn run_plan(plan_path: &Path, options: Options) -> Result<Outcome, String> {
 
     let report = Report {
         tool: format!("Breakdown {}", env!("CARGO_PKG_VERSION")),
-        plan: plan.path.display().to_string(),
+        plan: options
+            .plan_label
+            .clone()
+            .unwrap_or_else(|| plan.path.display().to_string()),
         circuit: plan.circuit_label.clone(),
         target_lufs: plan.target_lufs,
         true_peak_ceiling_dbtp: loudness::TRUE_PEAK_CEILING_DBTP,

@@ -203,7 +203,7 @@ pub fn render(report: &Report) -> Result<String, String> {
             "<table><tr><th class=\"l\">variant</th><th>clamp peak + (V)</th><th>clamp peak &minus; (V)</th>\
              <th>peak-to-peak (V)</th><th>time clamped (%)</th><th>loudness before matching (LUFS)</th>\
              <th>true peak before (dBTP)</th><th>crest factor (dB)</th><th>matching gain (dB)</th><th>true-peak limiting</th>\
-             <th>after (LUFS / dBTP)</th><th class=\"l\">matched clip</th></tr>\n"
+             <th>after matching (LUFS / dBTP)</th></tr>\n"
         );
         for r in &di.results {
             let m = &r.matching;
@@ -211,7 +211,7 @@ pub fn render(report: &Report) -> Result<String, String> {
                 "<span class=\"warn\">silent: not matched</span>".to_string()
             } else if m.limited {
                 format!(
-                    "<span class=\"warn\">yes: up to {} dB, {}% of the time</span>",
+                    "<span class=\"warn\">yes: {}&nbsp;dB max, {}% of the time</span>",
                     f(m.limiter_max_reduction_db, 1),
                     f(m.limiter_active_share * 100.0, 2)
                 )
@@ -221,7 +221,7 @@ pub fn render(report: &Report) -> Result<String, String> {
             let _ = write!(
                 h,
                 "<tr><td class=\"l\">{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td>\
-                 <td>{}</td><td class=\"l\">{}</td><td>{} / {}</td><td class=\"l\"><audio controls preload=\"none\" src=\"{}\"></audio></td></tr>\n",
+                 <td>{}</td><td class=\"l\">{}</td><td>{} / {}</td></tr>\n",
                 esc(&r.variant),
                 f(r.clamp_peak_positive_volts, 2),
                 f(r.clamp_peak_negative_volts, 2),
@@ -233,7 +233,17 @@ pub fn render(report: &Report) -> Result<String, String> {
                 f(m.gain_db, 1),
                 limiting,
                 f(m.loudness_after_lufs, 1),
-                f(m.true_peak_after_dbtp, 1),
+                f(m.true_peak_after_dbtp, 1)
+            );
+        }
+        h.push_str("</table>\n<p class=\"note\">Loudness-matched clips (the unmatched renders are in <code>unmatched/</code>):</p>\n<table>");
+        for r in &di.results {
+            let _ = write!(
+                h,
+                "<tr><td class=\"l\">{}</td><td class=\"l\"><audio controls preload=\"none\" src=\"{}\"></audio></td>\
+                 <td class=\"l\"><code>{}</code></td></tr>\n",
+                esc(&r.variant),
+                esc(&r.matched_file),
                 esc(&r.matched_file)
             );
         }
