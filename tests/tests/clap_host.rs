@@ -23,11 +23,12 @@ use clap_sys::ext::audio_ports::{
 use clap_sys::ext::audio_ports_config::{
     clap_audio_ports_config, clap_plugin_audio_ports_config, CLAP_EXT_AUDIO_PORTS_CONFIG,
 };
-use clap_sys::ext::latency::{clap_plugin_latency, CLAP_EXT_LATENCY};
+use clap_sys::ext::latency::{clap_host_latency, clap_plugin_latency, CLAP_EXT_LATENCY};
 use clap_sys::ext::params::{
     clap_param_info, clap_plugin_params, CLAP_EXT_PARAMS, CLAP_PARAM_IS_STEPPED,
 };
 use clap_sys::ext::state::{clap_plugin_state, CLAP_EXT_STATE};
+use clap_sys::ext::thread_check::{clap_host_thread_check, CLAP_EXT_THREAD_CHECK};
 use clap_sys::factory::plugin_factory::{clap_plugin_factory, CLAP_PLUGIN_FACTORY_ID};
 use clap_sys::host::clap_host;
 use clap_sys::plugin::clap_plugin;
@@ -37,6 +38,7 @@ use clap_sys::version::CLAP_VERSION;
 use plugin_host::{di_signal, ensure_bundles, max_diff, peak, reference_render, PluginSettings};
 use std::ffi::{c_char, c_void, CStr, CString};
 use std::ptr;
+use std::sync::atomic::{AtomicBool, AtomicUsize, Ordering};
 use std::sync::OnceLock;
 
 /// CLAP id the plugin registers (plugin/README.md, plugin/src/lib.rs).
@@ -98,23 +100,76 @@ fn module() -> &'static Module {
 // ---------------------------------------------------------------------------------------------------------
 // A minimal host
 
-unsafe extern "C" fn host_get_extension(_h: *const clap_host, _id: *const c_char) -> *const c_void {
-    ptr::null()
+/// What the host records about one instance. The thread that created the instance is the "main thread"; while
+/// `process` runs, the calling thread counts as the audio thread (ext/thread-check.h), so the plugin queues
+/// main-thread work through request_callback as it must in a DAW.
+struct HostState {
+    main_thread: std::thread::ThreadId,
+    in_process: AtomicBool,
+    callback_requested: AtomicBool,
+    restart_requested: AtomicBool,
+    latency_changed: AtomicUsize,
 }
-unsafe extern "C" fn host_noop(_h: *const clap_host) {}
 
-fn new_host() -> Box<clap_host> {
+unsafe fn host_state<'a>(h: *const clap_host) -> &'a HostState {
+    unsafe { &*((*h).host_data as *const HostState) }
+}
+
+unsafe extern "C" fn host_is_main_thread(h: *const clap_host) -> bool {
+    let s = unsafe { host_state(h) };
+    !s.in_process.load(Ordering::SeqCst) && std::thread::current().id() == s.main_thread
+}
+unsafe extern "C" fn host_is_audio_thread(h: *const clap_host) -> bool {
+    unsafe { host_state(h) }.in_process.load(Ordering::SeqCst)
+}
+unsafe extern "C" fn host_latency_changed(h: *const clap_host) {
+    unsafe { host_state(h) }
+        .latency_changed
+        .fetch_add(1, Ordering::SeqCst);
+}
+static HOST_THREAD_CHECK: clap_host_thread_check = clap_host_thread_check {
+    is_main_thread: Some(host_is_main_thread),
+    is_audio_thread: Some(host_is_audio_thread),
+};
+static HOST_LATENCY: clap_host_latency = clap_host_latency {
+    changed: Some(host_latency_changed),
+};
+
+/// The host offers thread-check and latency; every other extension is absent (null), as CLAP allows.
+unsafe extern "C" fn host_get_extension(_h: *const clap_host, id: *const c_char) -> *const c_void {
+    let id = unsafe { CStr::from_ptr(id) };
+    if id == CLAP_EXT_THREAD_CHECK {
+        &HOST_THREAD_CHECK as *const clap_host_thread_check as *const c_void
+    } else if id == CLAP_EXT_LATENCY {
+        &HOST_LATENCY as *const clap_host_latency as *const c_void
+    } else {
+        ptr::null()
+    }
+}
+unsafe extern "C" fn host_request_restart(h: *const clap_host) {
+    unsafe { host_state(h) }
+        .restart_requested
+        .store(true, Ordering::SeqCst);
+}
+unsafe extern "C" fn host_request_process(_h: *const clap_host) {}
+unsafe extern "C" fn host_request_callback(h: *const clap_host) {
+    unsafe { host_state(h) }
+        .callback_requested
+        .store(true, Ordering::SeqCst);
+}
+
+fn new_host(state: &HostState) -> Box<clap_host> {
     Box::new(clap_host {
         clap_version: CLAP_VERSION,
-        host_data: ptr::null_mut(),
+        host_data: state as *const HostState as *mut c_void,
         name: c"breakdown-tests host".as_ptr(),
         vendor: c"Breakdown project".as_ptr(),
         url: c"".as_ptr(),
         version: c"0.1".as_ptr(),
         get_extension: Some(host_get_extension),
-        request_restart: Some(host_noop),
-        request_process: Some(host_noop),
-        request_callback: Some(host_noop),
+        request_restart: Some(host_request_restart),
+        request_process: Some(host_request_process),
+        request_callback: Some(host_request_callback),
     })
 }
 
@@ -173,6 +228,7 @@ struct ParamInfo {
 struct Instance {
     plugin: *const clap_plugin,
     _host: Box<clap_host>,
+    host_state: Box<HostState>,
     params: *const clap_plugin_params,
     state: *const clap_plugin_state,
     latency: *const clap_plugin_latency,
@@ -196,7 +252,14 @@ fn c_str(chars: &[c_char]) -> String {
 impl Instance {
     fn new() -> Instance {
         let m = module();
-        let host = new_host();
+        let host_state = Box::new(HostState {
+            main_thread: std::thread::current().id(),
+            in_process: AtomicBool::new(false),
+            callback_requested: AtomicBool::new(false),
+            restart_requested: AtomicBool::new(false),
+            latency_changed: AtomicUsize::new(0),
+        });
+        let host = new_host(&host_state);
         let f = unsafe { &*m.factory };
         let count = unsafe { (f.get_plugin_count.unwrap())(m.factory) };
         assert!(count >= 1, "the factory lists no plugin");
@@ -213,6 +276,7 @@ impl Instance {
         let mut inst = Instance {
             plugin,
             _host: host,
+            host_state,
             params: ext(CLAP_EXT_PARAMS) as *const clap_plugin_params,
             state: ext(CLAP_EXT_STATE) as *const clap_plugin_state,
             latency: ext(CLAP_EXT_LATENCY) as *const clap_plugin_latency,
@@ -414,13 +478,65 @@ impl Instance {
             in_events: &in_events,
             out_events: &out_events,
         };
+        self.call_process(&process);
+    }
+
+    /// Process one block in place: the host hands the same channel buffers as input and output, as many
+    /// DAWs do (clap_process allows it: "the plugin must handle in-place processing").
+    fn process_in_place(&mut self, channels: &mut [&mut [f32]]) {
+        let frames = channels[0].len();
+        let mut ptrs: Vec<*mut f32> = channels.iter_mut().map(|c| c.as_mut_ptr()).collect();
+        let audio_in = clap_audio_buffer {
+            data32: ptrs.as_mut_ptr(),
+            data64: ptr::null_mut(),
+            channel_count: ptrs.len() as u32,
+            latency: 0,
+            constant_mask: 0,
+        };
+        let mut audio_out = audio_in;
+        let events = Events { list: Vec::new() };
+        let in_events = clap_input_events {
+            ctx: &events as *const Events as *mut c_void,
+            size: Some(events_size),
+            get: Some(events_get),
+        };
+        let out_events = clap_output_events {
+            ctx: ptr::null_mut(),
+            try_push: Some(out_push),
+        };
+        let process = clap_process {
+            steady_time: self.steady_time,
+            frames_count: frames as u32,
+            transport: ptr::null(),
+            audio_inputs: &audio_in,
+            audio_outputs: &mut audio_out,
+            audio_inputs_count: 1,
+            audio_outputs_count: 1,
+            in_events: &in_events,
+            out_events: &out_events,
+        };
+        self.call_process(&process);
+    }
+
+    /// Call process as the audio thread, then run main-thread work the plugin asked for (request_callback ->
+    /// on_main_thread, plugin.h).
+    fn call_process(&mut self, process: &clap_process) {
         let p = unsafe { &*self.plugin };
-        let status = unsafe { (p.process.unwrap())(self.plugin, &process) };
+        self.host_state.in_process.store(true, Ordering::SeqCst);
+        let status = unsafe { (p.process.unwrap())(self.plugin, process) };
+        self.host_state.in_process.store(false, Ordering::SeqCst);
         assert_ne!(
             status, CLAP_PROCESS_ERROR,
             "process returned CLAP_PROCESS_ERROR"
         );
-        self.steady_time += frames as i64;
+        self.steady_time += process.frames_count as i64;
+        if self
+            .host_state
+            .callback_requested
+            .swap(false, Ordering::SeqCst)
+        {
+            unsafe { (p.on_main_thread.unwrap())(self.plugin) };
+        }
     }
 
     /// Run whole signals through in blocks of `block` frames; returns the output channels.
@@ -613,6 +729,112 @@ fn mono_in_stereo_out_equals_the_model() {
             );
         }
     }
+}
+
+/// In-place buffers (input and output the same memory), stereo at 48 kHz: the same output as the model.
+#[test]
+fn in_place_processing_equals_the_model() {
+    let rate = 48_000.0;
+    let s = PluginSettings::default();
+    let input = di_signal(rate, 0.2, 0.7);
+    let (reference, model_latency) = reference_render(rate, s, &input);
+    let mut inst = Instance::new();
+    exact_settings(&inst, &s);
+    inst.activate(rate, 256);
+    let latency = inst.latency() as usize;
+    let mut left = input.clone();
+    left.resize(input.len() + latency, 0.0);
+    let mut right = left.clone();
+    for (l, r) in left.chunks_mut(256).zip(right.chunks_mut(256)) {
+        inst.process_in_place(&mut [l, r]);
+    }
+    check_against_model("in place, left", &left, &reference, latency, model_latency);
+    check_against_model(
+        "in place, right",
+        &right,
+        &reference,
+        latency,
+        model_latency,
+    );
+}
+
+/// Changing the quality while playing: the plugin builds the new models off the audio thread, crossfades, and
+/// reports the new latency the way ext/latency.h asks — it requests a restart, and once the host re-activates
+/// it, tells the host through clap_host_latency.changed and answers the new figure from latency.get.
+#[test]
+fn quality_change_while_playing_updates_the_reported_latency() {
+    let rate = 48_000.0;
+    let block = 256usize;
+    let model_latency = |q: Quality| {
+        let s = PluginSettings {
+            quality: q,
+            ..PluginSettings::default()
+        };
+        reference_render(rate, s, &[0.0]).1
+    };
+    let start = model_latency(Quality::X4);
+    // A quality whose filters delay differently from 4x, so the report has to change.
+    let (target_name, target) = [
+        ("1x", Quality::X1),
+        ("2x", Quality::X2),
+        ("8x", Quality::X8),
+        ("16x", Quality::X16),
+    ]
+    .into_iter()
+    .map(|(n, q)| (n, model_latency(q)))
+    .find(|(_, l)| *l != start)
+    .expect("some quality has a different latency from 4x");
+
+    let mut inst = Instance::new();
+    exact_settings(&inst, &PluginSettings::default());
+    inst.activate(rate, block as u32);
+    assert_eq!(inst.latency() as usize, start, "latency at 4x");
+    let quality = inst.param("Quality").id;
+    let value = inst.text_to_value("Quality", target_name);
+    let input = di_signal(rate, 0.5, 0.7);
+    let mut out = vec![Vec::new(); 2];
+    let mut restarts = 0;
+    let mut n = 0usize;
+    // Play until the host has been told (at most ~2000 blocks, about 10 s of audio, with short pauses so the
+    // plugin's background thread gets the CPU on a busy machine).
+    for i in 0..2000 {
+        let events = if i == 0 {
+            vec![param_event(0, quality, value)]
+        } else {
+            Vec::new()
+        };
+        let x: Vec<f32> = (0..block).map(|k| input[(n + k) % input.len()]).collect();
+        n += block;
+        inst.process_block(&[&x, &x], &mut out, events);
+        assert!(out.iter().flatten().all(|y| y.is_finite()));
+        if inst
+            .host_state
+            .restart_requested
+            .swap(false, Ordering::SeqCst)
+        {
+            // What a host does on request_restart: deactivate and activate again (plugin.h).
+            inst.deactivate();
+            inst.activate(rate, block as u32);
+            restarts += 1;
+        }
+        if inst.host_state.latency_changed.load(Ordering::SeqCst) > 0 {
+            break;
+        }
+        std::thread::sleep(std::time::Duration::from_millis(2));
+    }
+    assert!(
+        restarts >= 1,
+        "the plugin never asked the host for a restart"
+    );
+    assert!(
+        inst.host_state.latency_changed.load(Ordering::SeqCst) >= 1,
+        "the plugin never called clap_host_latency.changed"
+    );
+    assert_eq!(
+        inst.latency() as usize,
+        target,
+        "latency after switching to {target_name}"
+    );
 }
 
 /// Every parameter automated across its whole range with events inside the blocks: the output stays finite
