@@ -6,7 +6,7 @@ use crate::audio::{self, Audio};
 use crate::compare::{self, Options};
 use crate::report;
 use std::f64::consts::PI;
-use std::path::{Path, PathBuf};
+use std::path::PathBuf;
 
 /// The demo plan, built in so the demo runs from any folder.
 pub const DEMO_PLAN: &str = include_str!("../../presets-demo/demo-plan.toml");
@@ -391,6 +391,19 @@ fn bench_plan() -> String {
     plan
 }
 
+/// CPU time of this process, all threads (s), from /proc/self/stat (Linux; 100 clock ticks per second, the
+/// kernel's USER_HZ on every common configuration). None elsewhere.
+fn process_cpu_seconds() -> Option<f64> {
+    let stat = std::fs::read_to_string("/proc/self/stat").ok()?;
+    // Fields after the command name (which is in parentheses and may hold spaces): utime is the 14th field
+    // of the line, stime the 15th.
+    let rest = &stat[stat.rfind(')')? + 2..];
+    let fields: Vec<&str> = rest.split_whitespace().collect();
+    let utime: f64 = fields.get(11)?.parse().ok()?;
+    let stime: f64 = fields.get(12)?.parse().ok()?;
+    Some((utime + stime) / 100.0)
+}
+
 fn bench(args: &DemoArgs) -> Result<(), String> {
     if !(args.bench_seconds.is_finite() && (2.0..=3600.0).contains(&args.bench_seconds)) {
         return Err(format!(
@@ -412,6 +425,7 @@ fn bench(args: &DemoArgs) -> Result<(), String> {
     )?;
     let plan_path = dir.join("bench-plan.toml");
     std::fs::write(&plan_path, bench_plan()).map_err(|e| format!("cannot write plan: {e}"))?;
+    let cpu_start = process_cpu_seconds();
     let outcome = compare::run_plan(
         &plan_path,
         Options {
@@ -422,6 +436,7 @@ fn bench(args: &DemoArgs) -> Result<(), String> {
             plan_label: None,
         },
     )?;
+    let cpu = process_cpu_seconds().map(|end| end - cpu_start.unwrap_or(0.0));
     let variant_seconds = seconds * 2.0 * outcome.report.variants.len() as f64;
     println!(
         "compare benchmark: {seconds:.0} s stereo DI at {DEMO_RATE} Hz x {} variants at {}x oversampling (the default) \
@@ -433,7 +448,15 @@ fn bench(args: &DemoArgs) -> Result<(), String> {
         outcome.seconds,
         variant_seconds / outcome.seconds
     );
-    let _ = Path::new(&outcome.output);
+    if let Some(cpu) = cpu {
+        println!(
+            "CPU time of the run: {cpu:.1} s over all threads; on {} otherwise idle cores that is about {:.1} s wall \
+             ({:.1}x real time per variant-channel per core)",
+            outcome.threads,
+            cpu / outcome.threads as f64,
+            variant_seconds / cpu
+        );
+    }
     println!("Safety: {}", report::SAFETY);
     Ok(())
 }
