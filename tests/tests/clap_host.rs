@@ -58,11 +58,36 @@ unsafe impl Send for Module {}
 unsafe impl Sync for Module {}
 
 static MODULE: OnceLock<Module> = OnceLock::new();
+/// Where the plugin's log goes when the tests chose it.
+static PLUGIN_LOG: OnceLock<std::path::PathBuf> = OnceLock::new();
+
+/// Wait (up to a few seconds: the plugin's log writer runs on its own thread) for `needle` in the plugin log.
+/// None when the log is not ours to read.
+fn plugin_log_contains(needle: &str) -> Option<bool> {
+    let path = PLUGIN_LOG.get()?;
+    for _ in 0..150 {
+        if std::fs::read_to_string(path).is_ok_and(|t| t.contains(needle)) {
+            return Some(true);
+        }
+        std::thread::sleep(std::time::Duration::from_millis(20));
+    }
+    Some(false)
+}
 
 /// Load the bundle once per process and never unload it (the plugin's background threads live in it).
 fn module() -> &'static Module {
     MODULE.get_or_init(|| {
         ensure_bundles();
+        // Send the plugin's log to a file we can read (plugin/README.md: NICE_LOG selects where the log
+        // goes), unless the person running the tests chose a place themselves.
+        if std::env::var_os("NICE_LOG").is_none() {
+            let dir = plugin_host::target_dir().join("clap-host-test");
+            std::fs::create_dir_all(&dir).expect("create log dir");
+            let log = dir.join("plugin.log");
+            let _ = std::fs::remove_file(&log);
+            std::env::set_var("NICE_LOG", &log);
+            let _ = PLUGIN_LOG.set(log);
+        }
         let path = plugin_host::clap_bundle();
         // SAFETY: loading our own plugin; its initialisers only set up logging.
         let lib = unsafe { libloading::Library::new(&path) }
@@ -1019,25 +1044,34 @@ fn damaged_state_loads_defaults_and_keeps_processing() {
     prefixed.extend_from_slice(&garbage[..592]);
     garbage[..8].copy_from_slice(&u64::MAX.to_le_bytes());
 
-    // The same state with our own field claiming a newer layout version.
+    // The same state with our own `breakdown` field replaced (None: removed), framed as the plugin frames it.
     let json: serde_json::Value = serde_json::from_slice(&good[8..])
         .expect("the saved state is JSON after its 8-byte length");
-    let mut newer = json.clone();
-    let fields = newer
-        .get_mut("fields")
-        .and_then(|f| f.as_object_mut())
-        .expect("state has a 'fields' object");
     assert!(
-        fields.contains_key("breakdown"),
+        json.get("fields")
+            .and_then(|f| f.get("breakdown"))
+            .is_some(),
         "state carries the 'breakdown' field"
     );
-    fields.insert(
-        "breakdown".into(),
-        serde_json::Value::String(r#"{"version": 999, "scope_ms": 20.0}"#.into()),
-    );
-    let newer_text = serde_json::to_vec(&newer).unwrap();
-    let mut newer_state = (newer_text.len() as u64).to_le_bytes().to_vec();
-    newer_state.extend_from_slice(&newer_text);
+    let with_field = |field: Option<&str>| {
+        let mut v = json.clone();
+        let fields = v
+            .get_mut("fields")
+            .and_then(|f| f.as_object_mut())
+            .expect("state has a 'fields' object");
+        match field {
+            Some(text) => {
+                fields.insert("breakdown".into(), serde_json::Value::String(text.into()));
+            }
+            None => {
+                fields.remove("breakdown");
+            }
+        }
+        let text = serde_json::to_vec(&v).unwrap();
+        let mut bytes = (text.len() as u64).to_le_bytes().to_vec();
+        bytes.extend_from_slice(&text);
+        bytes
+    };
 
     let cases: Vec<(&str, Vec<u8>)> = vec![
         ("empty", Vec::new()),
@@ -1045,7 +1079,19 @@ fn damaged_state_loads_defaults_and_keeps_processing() {
         ("length only", good[..8].to_vec()),
         ("random bytes, huge length", garbage),
         ("random bytes, plausible length", prefixed),
-        ("newer 'breakdown' version", newer_state),
+        (
+            "newer 'breakdown' version",
+            with_field(Some(r#"{"version": 999, "scope_ms": 20.0}"#)),
+        ),
+        (
+            "older 'breakdown' version",
+            with_field(Some(r#"{"version": 0, "scope_ms": 20.0}"#)),
+        ),
+        ("missing 'breakdown' field", with_field(None)),
+        (
+            "damaged 'breakdown' field",
+            with_field(Some("{\"version\": 1, ")),
+        ),
     ];
     for (name, bytes) in cases {
         let mut inst = Instance::new();
@@ -1073,5 +1119,14 @@ fn damaged_state_loads_defaults_and_keeps_processing() {
             latency,
             model_latency,
         );
+    }
+    // The reasons are logged (issue 3: "loads to defaults with a logged reason"); the texts are the plugin's
+    // StateProblem messages (plugin/src/params.rs).
+    match plugin_log_contains("newer than this plugin's") {
+        Some(found) => assert!(
+            found,
+            "no logged reason for the newer state in the plugin log"
+        ),
+        None => eprintln!("NICE_LOG set by the caller: the logged reason is not checked"),
     }
 }
