@@ -114,7 +114,7 @@ impl RootDevices<PORTS> for StageDevices {
             out.current[ZENER_PORT] = 0.0;
             out.current_dx[ZENER_PORT][ZENER_PORT] = 0.0;
         } else {
-            let point = pair.at(x[ZENER_PORT]);
+            let point = pair.port(x[ZENER_PORT]);
             out.volts[ZENER_PORT] = point.volts;
             out.volts_dx[ZENER_PORT][ZENER_PORT] = point.volts_ds;
             out.current[ZENER_PORT] = point.current;
@@ -169,6 +169,7 @@ impl Stage {
     /// Build the stage for `circuit` at internal sample rate `rate` (Hz), at its DC operating point.
     /// Every switch position's Zener tables are built here, outside the audio path.
     pub fn new(circuit: &Circuit, rate: f64, level: f64, position: usize) -> Stage {
+        crate::fastmath::prepare_tables();
         let g = &circuit.gain_stage;
         let c = &circuit.clamp;
         let pairs = c
@@ -405,12 +406,11 @@ impl Stage {
         self.coupling_feed.incident(a[4]);
         self.level_network.incident(a[5]);
         let pair = &self.devices.pairs[self.devices.active_pair];
-        let (positive_part_volts, negative_part_volts) = if pair.is_open() {
-            (0.0, 0.0)
-        } else {
-            let point = pair.at(self.unknowns[ZENER_PORT]);
-            (point.positive_part_volts, point.negative_part_volts)
-        };
+        let (positive_part_volts, negative_part_volts) = pair.part_volts(
+            self.unknowns[ZENER_PORT],
+            currents[ZENER_PORT],
+            nodes[CLAMP_NODE - 1],
+        );
         self.probe = StageProbe {
             clamp_volts: nodes[CLAMP_NODE - 1],
             wiper_volts: self.level_network.second.voltage(),

@@ -42,6 +42,8 @@ const GRID_GG: f64 = 6.177e-4;
 const GRID_XI: f64 = 1.314;
 const GRID_CG: f64 = 9.901;
 const GRID_IG0: f64 = 8.025e-8;
+/// ln Cg.
+const GRID_LN_CG: f64 = 2.292_635_762_140_377_7;
 
 /// Currents of one triode and their partial derivatives at an operating point.
 #[derive(Clone, Copy, Debug, Default, PartialEq)]
@@ -85,24 +87,15 @@ impl Triode {
     }
 
     /// Grid current Ig = Gg (ln(1 + exp(Cg Vgk)) / Cg)^xi + Ig0 (Dempwolf and Zoelzer, DAFx-11), and dIg/dVgk.
+    /// Evaluated as Gg exp(xi (L(Cg Vgk) - ln Cg)) + Ig0 with L = ln softplus from `fastmath::ln_softplus`.
     #[inline]
     pub fn grid_current(vgk: f64) -> (f64, f64) {
-        let z = GRID_CG * vgk;
-        if z < -10.0 {
-            // Far below conduction ln(1 + e^z) = e^z to 2e-5 relative, so the power needs one exponential;
-            // the current here is below 1e-12 A.
-            let powed = fastmath::exp(GRID_XI * (z - GRID_CG.ln()));
-            return (
-                GRID_GG * powed + GRID_IG0,
-                GRID_GG * GRID_XI * powed * GRID_CG,
-            );
-        }
-        let (sp, sigma) = fastmath::softplus_logistic(z);
-        let base = sp / GRID_CG;
-        let powed = fastmath::powf(base, GRID_XI);
-        let current = GRID_GG * powed + GRID_IG0;
-        let slope = GRID_GG * GRID_XI * powed / base * sigma;
-        (current, slope)
+        let (l, dl) = fastmath::ln_softplus(GRID_CG * vgk);
+        let powed = fastmath::exp(GRID_XI * (l - GRID_LN_CG));
+        (
+            GRID_GG * powed + GRID_IG0,
+            GRID_GG * GRID_XI * GRID_CG * powed * dl,
+        )
     }
 
     /// Plate and grid currents with their derivatives.
@@ -117,20 +110,17 @@ impl Triode {
         if vpk <= 0.0 {
             return out;
         }
-        let root = (self.kvb + vpk * vpk).sqrt();
-        let z = self.kp * (1.0 / self.mu + vgk / root);
-        let (sp, sigma) = fastmath::softplus_logistic(z);
-        let e1 = vpk / self.kp * sp;
-        if e1 <= 0.0 {
-            return out;
-        }
-        let powed = fastmath::powf(e1, self.ex);
-        out.plate = 2.0 * powed / self.kg1;
-        let dip_de1 = 2.0 * self.ex * powed / (e1 * self.kg1);
-        let de1_dvgk = vpk * sigma / root;
-        let de1_dvpk = sp / self.kp - vpk * vpk * vgk * sigma / (root * root * root);
-        out.plate_dvgk = dip_de1 * de1_dvgk;
-        out.plate_dvpk = dip_de1 * de1_dvpk;
+        // ln E1 = ln(Vpk / kp) + L(z) with L = ln softplus (tabulated), so Ip = (2 / kg1) exp(ex ln E1).
+        let inv_root = 1.0 / (self.kvb + vpk * vpk).sqrt();
+        let z = self.kp * (1.0 / self.mu + vgk * inv_root);
+        let (l, dl) = fastmath::ln_softplus(z);
+        let plate = 2.0 / self.kg1 * fastmath::exp(self.ex * (fastmath::ln(vpk / self.kp) + l));
+        out.plate = plate;
+        // d ln E1 / dVgk = L'(z) kp / root; d ln E1 / dVpk = 1 / Vpk - L'(z) kp Vgk Vpk / root^3.
+        let k = self.ex * plate;
+        let dz_dvgk = self.kp * inv_root;
+        out.plate_dvgk = k * dl * dz_dvgk;
+        out.plate_dvpk = k * (1.0 / vpk - dl * dz_dvgk * vgk * vpk * inv_root * inv_root);
         out
     }
 }

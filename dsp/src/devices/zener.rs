@@ -132,8 +132,8 @@ pub struct JunctionTable {
     start: f64,
     step: f64,
     inv_step: f64,
-    volts: Vec<f64>,
-    slope: Vec<f64>,
+    /// (voltage, dV/ds) at each point.
+    points: Vec<[f64; 2]>,
 }
 
 const TABLE_HALF_SPAN: f64 = 32.0;
@@ -143,8 +143,7 @@ impl JunctionTable {
     /// Tabulate the inverse of the junction law of `part` (built once per part, not in the audio path).
     pub fn build(part: &Zener) -> JunctionTable {
         let step = 2.0 * TABLE_HALF_SPAN / (TABLE_POINTS - 1) as f64;
-        let mut volts = vec![0.0; TABLE_POINTS];
-        let mut slope = vec![0.0; TABLE_POINTS];
+        let mut points = vec![[0.0; 2]; TABLE_POINTS];
         let centre = TABLE_POINTS / 2;
         // March outward from zero current so each solve starts next to its answer.
         for half in [0, 1] {
@@ -155,8 +154,7 @@ impl JunctionTable {
                 let current = CURRENT_SCALE * s.sinh();
                 let vj = part.junction_voltage_at(current, guess);
                 let (_, g) = part.junction_current(vj);
-                volts[idx] = vj;
-                slope[idx] = CURRENT_SCALE * s.cosh() / g;
+                points[idx] = [vj, CURRENT_SCALE * s.cosh() / g];
                 guess = vj;
             }
         }
@@ -164,8 +162,31 @@ impl JunctionTable {
             start: -TABLE_HALF_SPAN,
             step,
             inv_step: 1.0 / step,
-            volts,
-            slope,
+            points,
+        }
+    }
+
+    /// The pair's two junctions in one table: Vn(s) - Vp(-s) for the negative-clamp part `negative` carrying
+    /// I = CURRENT_SCALE sinh s and the positive-clamp part `positive` carrying -I (either may be absent). The
+    /// grid is symmetric about s = 0, so the mirrored table interpolates exactly as the separate lookups did.
+    fn combined(
+        negative: Option<&JunctionTable>,
+        positive: Option<&JunctionTable>,
+    ) -> JunctionTable {
+        let last = TABLE_POINTS - 1;
+        let step = 2.0 * TABLE_HALF_SPAN / last as f64;
+        let points = (0..TABLE_POINTS)
+            .map(|i| {
+                let [vn, dn] = negative.map_or([0.0; 2], |t| t.points[i]);
+                let [vp, dp] = positive.map_or([0.0; 2], |t| t.points[last - i]);
+                [vn - vp, dn + dp]
+            })
+            .collect();
+        JunctionTable {
+            start: -TABLE_HALF_SPAN,
+            step,
+            inv_step: 1.0 / step,
+            points,
         }
     }
 
@@ -173,36 +194,30 @@ impl JunctionTable {
     #[inline]
     pub fn eval(&self, s: f64) -> (f64, f64) {
         let pos = (s - self.start) * self.inv_step;
-        let last = self.volts.len() - 1;
-        if pos <= 0.0 {
-            return (
-                self.volts[0] + (s - self.start) * self.slope[0],
-                self.slope[0],
-            );
+        let last = self.points.len() - 1;
+        if pos.is_nan() || pos <= 0.0 {
+            let [v, d] = self.points[0];
+            let ds = if s.is_nan() { 0.0 } else { s - self.start };
+            return (v + ds * d, d);
         }
         if pos >= last as f64 {
             let end = self.start + last as f64 * self.step;
-            return (
-                self.volts[last] + (s - end) * self.slope[last],
-                self.slope[last],
-            );
+            let [v, d] = self.points[last];
+            return (v + (s - end) * d, d);
         }
-        let idx = pos as usize;
+        // floor(pos) by the round-to-nearest shift trick on pos - 1/2 (pos is in (0, last) here).
+        const SHIFT: f64 = 6_755_399_441_055_744.0;
+        let idx = (((pos - 0.5) + SHIFT).to_bits() as u32 as usize).min(last - 1);
         let t = pos - idx as f64;
-        let (y0, y1) = (self.volts[idx], self.volts[idx + 1]);
-        let (m0, m1) = (self.slope[idx] * self.step, self.slope[idx + 1] * self.step);
-        let t2 = t * t;
-        let t3 = t2 * t;
-        let h00 = 2.0 * t3 - 3.0 * t2 + 1.0;
-        let h10 = t3 - 2.0 * t2 + t;
-        let h01 = -2.0 * t3 + 3.0 * t2;
-        let h11 = t3 - t2;
-        let value = h00 * y0 + h10 * m0 + h01 * y1 + h11 * m1;
-        let dh00 = 6.0 * t2 - 6.0 * t;
-        let dh10 = 3.0 * t2 - 4.0 * t + 1.0;
-        let dh01 = -6.0 * t2 + 6.0 * t;
-        let dh11 = 3.0 * t2 - 2.0 * t;
-        let deriv = (dh00 * y0 + dh10 * m0 + dh01 * y1 + dh11 * m1) * self.inv_step;
+        let [y0, d0] = self.points[idx];
+        let [y1, d1] = self.points[idx + 1];
+        let (m0, m1) = (d0 * self.step, d1 * self.step);
+        let dy = y1 - y0;
+        // Hermite form: y0 + t (m0 + t (c2 + t c3)).
+        let c2 = 3.0 * dy - 2.0 * m0 - m1;
+        let c3 = m0 + m1 - 2.0 * dy;
+        let value = y0 + t * (m0 + t * (c2 + t * c3));
+        let deriv = (m0 + t * (2.0 * c2 + t * 3.0 * c3)) * self.inv_step;
         (value, deriv)
     }
 }
@@ -246,13 +261,69 @@ pub struct PairPoint {
 pub struct ZenerPair {
     pub positive: Option<TabulatedZener>,
     pub negative: Option<TabulatedZener>,
+    /// Both junctions in one table (None when the position is open), and the two series resistances summed.
+    combined: Option<JunctionTable>,
+    series_resistance: f64,
 }
 
 impl ZenerPair {
     pub fn new(positive: Option<Zener>, negative: Option<Zener>) -> Self {
+        let positive = positive.map(TabulatedZener::new);
+        let negative = negative.map(TabulatedZener::new);
+        let combined = if positive.is_none() && negative.is_none() {
+            None
+        } else {
+            Some(JunctionTable::combined(
+                negative.as_ref().map(|z| &z.table),
+                positive.as_ref().map(|z| &z.table),
+            ))
+        };
+        let series_resistance = positive.as_ref().map_or(0.0, |z| z.part.rs)
+            + negative.as_ref().map_or(0.0, |z| z.part.rs);
         ZenerPair {
-            positive: positive.map(TabulatedZener::new),
-            negative: negative.map(TabulatedZener::new),
+            positive,
+            negative,
+            combined,
+            series_resistance,
+        }
+    }
+
+    /// Pair voltage and current with their s-derivatives at s, from the combined table (one lookup); the
+    /// per-part voltages are left at zero (see `part_volts` and `at`).
+    #[inline]
+    pub fn port(&self, s: f64) -> PairPoint {
+        let (sinh, cosh) = crate::fastmath::sinh_cosh(s);
+        let current = CURRENT_SCALE * sinh;
+        let current_ds = CURRENT_SCALE * cosh;
+        let (vj, dvj) = match &self.combined {
+            Some(t) => t.eval(s),
+            None => (0.0, 0.0),
+        };
+        PairPoint {
+            volts: vj + self.series_resistance * current,
+            volts_ds: dvj + self.series_resistance * current_ds,
+            current,
+            current_ds,
+            ..Default::default()
+        }
+    }
+
+    /// (positive-part, negative-part) voltages as in `PairPoint` for a pair carrying `current` at s whose
+    /// total voltage is `total_volts`: one table lookup (the other part takes the rest of the total).
+    #[inline]
+    pub fn part_volts(&self, s: f64, current: f64, total_volts: f64) -> (f64, f64) {
+        match (&self.positive, &self.negative) {
+            (_, Some(neg)) => {
+                let negative = neg.table.eval(s).0 + neg.part.rs * current;
+                let positive = if self.positive.is_some() {
+                    total_volts - negative
+                } else {
+                    0.0
+                };
+                (positive, negative)
+            }
+            (Some(_), None) => (total_volts, 0.0),
+            (None, None) => (0.0, 0.0),
         }
     }
 
