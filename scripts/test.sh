@@ -19,7 +19,7 @@ if [ ${#missing[@]} -gt 0 ]; then
   DEBIAN_FRONTEND=noninteractive $sudo_cmd apt-get install -y -qq --no-install-recommends "${missing[@]}" >/dev/null
 fi
 if command -v python3 >/dev/null && ! python3 -c "import pedalboard" 2>/dev/null; then
-  python3 -m pip install --quiet "pedalboard==0.9.*" || echo "pedalboard not installed: the VST3 host test will say it is skipped"
+  python3 -m pip install --quiet "pedalboard==0.9.26" || echo "pedalboard not installed: the VST3 host test will say it is skipped"
 fi
 
 # Regenerate the ngspice reference data and compare with the committed copy (about two minutes).
