@@ -12,8 +12,9 @@ use std::path::PathBuf;
 pub const DEMO_PLAN: &str = include_str!("../../presets-demo/demo-plan.toml");
 /// Demo DI sample rate (Hz).
 pub const DEMO_RATE: u32 = 48_000;
-/// Peak volts of the demo DI at the input jack: a hot passive pickup on hard strums [common practice].
-pub const DEMO_PEAK_VOLTS: f64 = 0.4;
+/// Peak volts of the demo DI at the input jack: a hot passive pickup dug in hard [common practice], enough
+/// to drive the reference stage past the 20 V pair at full gain.
+pub const DEMO_PEAK_VOLTS: f64 = 0.8;
 
 #[derive(clap::Args)]
 pub struct DemoArgs {
