@@ -206,6 +206,9 @@ pub struct Engine {
     listen_units_per_volt: f64,
     gain_law: PotLaw,
     gain: Glide,
+    /// Gain pot position of the last computed attenuation, and that attenuation (the law needs a power).
+    law_gain: f64,
+    attenuation: f64,
     level: Glide,
     level_countdown: usize,
     active: [bool; 6],
@@ -255,6 +258,8 @@ impl Engine {
             listen_units_per_volt: 1.0 / circuit.listen.volts_at_full_scale,
             gain_law: circuit.gain_stage.gain_pot_law,
             gain: Glide::new(settings.gain, sample_rate),
+            law_gain: f64::NAN,
+            attenuation: 0.0,
             level: Glide::new(settings.level, sample_rate),
             level_countdown: 0,
             active: [true; 6],
@@ -383,7 +388,11 @@ impl Engine {
                 }
             }
         }
-        let attenuation = self.gain_law.fraction(gain);
+        if gain != self.law_gain {
+            self.law_gain = gain;
+            self.attenuation = self.gain_law.fraction(gain);
+        }
+        let attenuation = self.attenuation;
         let factor = self.quality.factor();
         self.up
             .process(volts * attenuation, &mut self.high_in[..factor]);

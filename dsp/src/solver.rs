@@ -62,18 +62,21 @@ pub fn solve<const P: usize, D: RootDevices<P>>(
     while report.iterations < max_iterations {
         report.iterations += 1;
         devices.evaluate(x, eval);
+        // Residual v - p - K i (negated, as the right-hand side) and Jacobian dv/dx - K di/dx.
         let mut residual = [0.0; P];
-        let mut jacobian = eval.volts_dx;
-        let pattern = D::PATTERN;
+        let mut jacobian = [[0.0; P]; P];
         for row in 0..P {
-            let mut r = eval.volts[row] - p[row];
+            let k_row = &k[row];
+            let mut r = p[row] - eval.volts[row];
             for q in 0..P {
-                r -= k[row][q] * eval.current[q];
+                r += k_row[q] * eval.current[q];
             }
-            for &(q, col) in pattern {
-                jacobian[row][col] -= k[row][q] * eval.current_dx[q][col];
+            residual[row] = r;
+            let j_row = &mut jacobian[row];
+            *j_row = eval.volts_dx[row];
+            for &(q, col) in D::PATTERN {
+                j_row[col] -= k_row[q] * eval.current_dx[q][col];
             }
-            residual[row] = -r;
         }
         solve_in_place(&mut jacobian, &mut residual);
         let mut small = true;
@@ -86,9 +89,7 @@ pub fn solve<const P: usize, D: RootDevices<P>>(
             }
             x[i] += step;
             residual[i] = step;
-            if step.abs() > tolerance[i] {
-                small = false;
-            }
+            small &= step.abs() <= tolerance[i];
         }
         if small {
             // Carry the currents through the last (tiny) step to first order.
@@ -101,4 +102,62 @@ pub fn solve<const P: usize, D: RootDevices<P>>(
     }
     devices.evaluate(x, eval);
     report
+}
+
+/// Solve the small dense system `a x = r` by elimination without row exchanges, accepted when the pivots
+/// stay away from zero and the entries grow at most 1e6-fold (then the rounding error stays far below what a
+/// Newton step needs); otherwise Gaussian elimination with partial pivoting.
+#[inline(always)]
+pub fn solve_small<const P: usize>(a: &[[f64; P]; P], r: &[f64; P]) -> [f64; P] {
+    let mut largest_input = 0.0f64;
+    for row in a {
+        for v in row {
+            let v = v.abs();
+            // Plain comparisons (one maxsd each); f64::max's NaN rules cost several instructions.
+            largest_input = if v > largest_input { v } else { largest_input };
+        }
+    }
+    let mut m = *a;
+    let mut y = *r;
+    let mut smallest_pivot = f64::INFINITY;
+    let mut largest_factor = 0.0f64;
+    for col in 0..P {
+        let d = m[col][col];
+        let pivot = d.abs();
+        smallest_pivot = if pivot < smallest_pivot {
+            pivot
+        } else {
+            smallest_pivot
+        };
+        let inv = 1.0 / d;
+        for row in col + 1..P {
+            let f = m[row][col] * inv;
+            for k in col + 1..P {
+                m[row][k] -= f * m[col][k];
+                let v = m[row][k].abs();
+                largest_factor = if v > largest_factor {
+                    v
+                } else {
+                    largest_factor
+                };
+            }
+            y[row] -= f * y[col];
+        }
+    }
+    // A NaN anywhere gives a NaN solution here as it would with pivoting; the Newton loop rejects the step.
+    let stable = smallest_pivot >= 1e-12 * largest_input && largest_factor <= 1e6 * largest_input;
+    if !stable {
+        let mut m = *a;
+        let mut y = *r;
+        solve_in_place(&mut m, &mut y);
+        return y;
+    }
+    for col in (0..P).rev() {
+        let mut sum = y[col];
+        for k in col + 1..P {
+            sum -= m[col][k] * y[k];
+        }
+        y[col] = sum / m[col][col];
+    }
+    y
 }

@@ -15,7 +15,7 @@ use crate::circuit::{Circuit, Placement};
 use crate::devices::triode::Triode;
 use crate::devices::zener::{ZenerPair, CURRENT_SCALE};
 use crate::pot::PotLaw;
-use crate::solver::{self, NewtonReport, PortEval, RootDevices};
+use crate::solver::{self, NewtonReport};
 use crate::wdf::{
     Capacitor, Parallel, RTypeRoot, ResistiveVoltageSource, Resistor, Series, Terminal, WaveElement,
 };
@@ -83,58 +83,133 @@ struct StageDevices {
     tolerance: [f64; PORTS],
 }
 
-impl RootDevices<PORTS> for StageDevices {
-    #[inline]
-    fn evaluate(&self, x: &[f64; PORTS], out: &mut PortEval<PORTS>) {
+/// Device currents and derivatives at one Newton point, in the stage's fixed sparsity: each valve's plate
+/// current follows its Vpk and Vgk, its grid current its Vgk, and the pair's current and voltage its s.
+#[derive(Clone, Copy, Debug, Default)]
+struct DeviceEval {
+    /// Port currents, indexed by port.
+    current: [f64; PORTS],
+    /// Pair voltage and dV/ds (the valve ports' voltages are their unknowns themselves).
+    pair_volts: f64,
+    pair_volts_ds: f64,
+    /// d(gain plate current)/d(Vpk, Vgk), d(gain grid current)/dVgk.
+    gain_plate_dvpk: f64,
+    gain_plate_dvgk: f64,
+    gain_grid_dvgk: f64,
+    /// The same for the follower.
+    follower_plate_dvpk: f64,
+    follower_plate_dvgk: f64,
+    follower_grid_dvgk: f64,
+    /// dI/ds of the pair.
+    pair_current_ds: f64,
+}
+
+impl StageDevices {
+    #[inline(always)]
+    fn evaluate(&self, x: &[f64; PORTS]) -> DeviceEval {
         let gain = self
             .gain_valve
             .currents(x[GAIN_PLATE_PORT], x[GAIN_GRID_PORT]);
         let follower = self
             .follower_valve
             .currents(x[FOLLOWER_PLATE_PORT], x[FOLLOWER_GRID_PORT]);
-        for (plate, grid, t) in [
-            (GAIN_PLATE_PORT, GAIN_GRID_PORT, gain),
-            (FOLLOWER_PLATE_PORT, FOLLOWER_GRID_PORT, follower),
-        ] {
-            out.volts[plate] = x[plate];
-            out.volts[grid] = x[grid];
-            out.volts_dx[plate][plate] = 1.0;
-            out.volts_dx[grid][grid] = 1.0;
-            out.current[plate] = t.plate;
-            out.current[grid] = t.grid;
-            out.current_dx[plate][plate] = t.plate_dvpk;
-            out.current_dx[plate][grid] = t.plate_dvgk;
-            out.current_dx[grid][grid] = t.grid_dvgk;
-        }
         let pair = &self.pairs[self.active_pair];
-        if pair.is_open() {
+        let (pair_volts, pair_volts_ds, pair_current, pair_current_ds) = if pair.is_open() {
             // No parts: the unknown is the open port's voltage and no current flows.
-            out.volts[ZENER_PORT] = x[ZENER_PORT];
-            out.volts_dx[ZENER_PORT][ZENER_PORT] = 1.0;
-            out.current[ZENER_PORT] = 0.0;
-            out.current_dx[ZENER_PORT][ZENER_PORT] = 0.0;
+            (x[ZENER_PORT], 1.0, 0.0, 0.0)
         } else {
             let point = pair.port(x[ZENER_PORT]);
-            out.volts[ZENER_PORT] = point.volts;
-            out.volts_dx[ZENER_PORT][ZENER_PORT] = point.volts_ds;
-            out.current[ZENER_PORT] = point.current;
-            out.current_dx[ZENER_PORT][ZENER_PORT] = point.current_ds;
+            (point.volts, point.volts_ds, point.current, point.current_ds)
+        };
+        let mut current = [0.0; PORTS];
+        current[GAIN_PLATE_PORT] = gain.plate;
+        current[GAIN_GRID_PORT] = gain.grid;
+        current[FOLLOWER_PLATE_PORT] = follower.plate;
+        current[FOLLOWER_GRID_PORT] = follower.grid;
+        current[ZENER_PORT] = pair_current;
+        DeviceEval {
+            current,
+            pair_volts,
+            pair_volts_ds,
+            gain_plate_dvpk: gain.plate_dvpk,
+            gain_plate_dvgk: gain.plate_dvgk,
+            gain_grid_dvgk: gain.grid_dvgk,
+            follower_plate_dvpk: follower.plate_dvpk,
+            follower_plate_dvgk: follower.plate_dvgk,
+            follower_grid_dvgk: follower.grid_dvgk,
+            pair_current_ds,
         }
     }
-    const PATTERN: &'static [(usize, usize)] = &[
-        (GAIN_PLATE_PORT, GAIN_PLATE_PORT),
-        (GAIN_PLATE_PORT, GAIN_GRID_PORT),
-        (GAIN_GRID_PORT, GAIN_GRID_PORT),
-        (FOLLOWER_PLATE_PORT, FOLLOWER_PLATE_PORT),
-        (FOLLOWER_PLATE_PORT, FOLLOWER_GRID_PORT),
-        (FOLLOWER_GRID_PORT, FOLLOWER_GRID_PORT),
-        (ZENER_PORT, ZENER_PORT),
-    ];
-    fn max_step(&self) -> &[f64; PORTS] {
-        &self.max_step
-    }
-    fn tolerance(&self) -> &[f64; PORTS] {
-        &self.tolerance
+
+    /// Damped Newton on v(x) - p - K i(x) = 0 (K-method form) from the seed in `x`, with each unknown's step
+    /// limited as SPICE limits junction steps; stops when every step is within its tolerance. Leaves the
+    /// solution in `x` and its port currents (first-order corrected through the last step) in `eval`.
+    #[inline]
+    fn solve(
+        &self,
+        k: &[[f64; PORTS]; PORTS],
+        p: &[f64; PORTS],
+        x: &mut [f64; PORTS],
+        eval: &mut DeviceEval,
+        max_iterations: u32,
+    ) -> NewtonReport {
+        let mut report = NewtonReport::default();
+        while report.iterations < max_iterations {
+            report.iterations += 1;
+            let e = self.evaluate(x);
+            *eval = e;
+            let i = &e.current;
+            let v = [x[0], x[1], x[2], x[3], e.pair_volts];
+            // Right-hand side p - v + K i and Jacobian dv/dx - K di/dx, written out for the fixed sparsity.
+            let mut rhs = [0.0; PORTS];
+            let mut jacobian = [[0.0; PORTS]; PORTS];
+            for row in 0..PORTS {
+                let kr = &k[row];
+                rhs[row] = p[row] - v[row]
+                    + (kr[0] * i[0] + kr[1] * i[1] + kr[2] * i[2] + kr[3] * i[3] + kr[4] * i[4]);
+                jacobian[row] = [
+                    -(kr[GAIN_PLATE_PORT] * e.gain_plate_dvpk),
+                    -(kr[GAIN_PLATE_PORT] * e.gain_plate_dvgk
+                        + kr[GAIN_GRID_PORT] * e.gain_grid_dvgk),
+                    -(kr[FOLLOWER_PLATE_PORT] * e.follower_plate_dvpk),
+                    -(kr[FOLLOWER_PLATE_PORT] * e.follower_plate_dvgk
+                        + kr[FOLLOWER_GRID_PORT] * e.follower_grid_dvgk),
+                    -(kr[ZENER_PORT] * e.pair_current_ds),
+                ];
+            }
+            jacobian[0][0] += 1.0;
+            jacobian[1][1] += 1.0;
+            jacobian[2][2] += 1.0;
+            jacobian[3][3] += 1.0;
+            jacobian[4][4] += e.pair_volts_ds;
+            let mut step = solver::solve_small(&jacobian, &rhs);
+            let mut small = true;
+            for n in 0..PORTS {
+                let mut s = step[n].clamp(-self.max_step[n], self.max_step[n]);
+                if !s.is_finite() {
+                    s = 0.0;
+                    small = false;
+                }
+                x[n] += s;
+                step[n] = s;
+                small &= s.abs() <= self.tolerance[n];
+            }
+            if small {
+                // Carry the currents through the last (tiny) step to first order.
+                let c = &mut eval.current;
+                c[GAIN_PLATE_PORT] += e.gain_plate_dvpk * step[GAIN_PLATE_PORT]
+                    + e.gain_plate_dvgk * step[GAIN_GRID_PORT];
+                c[GAIN_GRID_PORT] += e.gain_grid_dvgk * step[GAIN_GRID_PORT];
+                c[FOLLOWER_PLATE_PORT] += e.follower_plate_dvpk * step[FOLLOWER_PLATE_PORT]
+                    + e.follower_plate_dvgk * step[FOLLOWER_GRID_PORT];
+                c[FOLLOWER_GRID_PORT] += e.follower_grid_dvgk * step[FOLLOWER_GRID_PORT];
+                c[ZENER_PORT] += e.pair_current_ds * step[ZENER_PORT];
+                report.converged = true;
+                return report;
+            }
+        }
+        *eval = self.evaluate(x);
+        report
     }
 }
 
@@ -160,7 +235,7 @@ pub struct Stage {
     unknowns: [f64; PORTS],
     previous_unknowns: [f64; PORTS],
     older_unknowns: [f64; PORTS],
-    eval: PortEval<PORTS>,
+    eval: DeviceEval,
     last_report: NewtonReport,
     probe: StageProbe,
 }
@@ -237,7 +312,7 @@ impl Stage {
             unknowns: [0.0; PORTS],
             previous_unknowns: [0.0; PORTS],
             older_unknowns: [0.0; PORTS],
-            eval: PortEval::default(),
+            eval: DeviceEval::default(),
             last_report: NewtonReport::default(),
             probe: StageProbe::default(),
         };
@@ -261,7 +336,11 @@ impl Stage {
         self.level_network.second.first.set_resistance(bottom);
     }
 
-    fn edge_resistances(&self) -> [f64; 6] {
+    /// Refresh every subtree's cached coefficients and return the edge port resistances.
+    fn edge_resistances(&mut self) -> [f64; 6] {
+        self.cathode_network.refresh();
+        self.coupling_feed.refresh();
+        self.level_network.refresh();
         [
             self.grid_feed.port_resistance(),
             self.cathode_network.port_resistance(),
@@ -368,8 +447,7 @@ impl Stage {
         }
         self.older_unknowns = self.previous_unknowns;
         self.previous_unknowns = seed;
-        self.last_report = solver::solve(
-            &self.devices,
+        self.last_report = self.devices.solve(
             &self.root.port_from_current,
             &p,
             &mut self.unknowns,
@@ -379,8 +457,7 @@ impl Stage {
         if !self.last_report.converged {
             // Start again from the last solution without the prediction, with a larger budget.
             self.unknowns = seed;
-            let retry = solver::solve(
-                &self.devices,
+            let retry = self.devices.solve(
                 &self.root.port_from_current,
                 &p,
                 &mut self.unknowns,
@@ -394,7 +471,7 @@ impl Stage {
         }
         if !self.unknowns.iter().all(|v| v.is_finite()) {
             self.unknowns = seed;
-            self.devices.evaluate(&seed, &mut self.eval);
+            self.eval = self.devices.evaluate(&seed);
         }
         let currents = self.eval.current;
         let nodes = self.root.node_voltages(&b, &currents);

@@ -12,6 +12,9 @@ pub trait WaveElement {
     fn voltage(&self) -> f64;
     /// Port current i = (a - b) / 2R after the last incident wave (A, into the + terminal).
     fn current(&self) -> f64;
+    /// Recompute cached adaptor coefficients after any port resistance below changed (resistor values,
+    /// capacitor discretisation). Leaves have nothing cached.
+    fn refresh(&mut self) {}
 }
 
 /// Last waves seen at a port, for voltage and current readouts.
@@ -173,6 +176,7 @@ impl WaveElement for ResistiveVoltageSource {
 }
 
 /// Series adaptor, v = v1 + v2, i = i1 = i2: R = R1 + R2, b = b1 + b2, a1 = b1 + (R1/R)(a - b).
+/// R and R1/R are cached: call `refresh` after changing a child's resistance.
 #[derive(Clone, Debug)]
 pub struct Series<A, B> {
     pub first: A,
@@ -180,36 +184,42 @@ pub struct Series<A, B> {
     waves: Waves,
     reflected_first: f64,
     reflected_second: f64,
+    resistance: f64,
+    first_share: f64,
 }
 
 impl<A: WaveElement, B: WaveElement> Series<A, B> {
     pub fn new(first: A, second: B) -> Self {
-        Series {
+        let mut series = Series {
             first,
             second,
             waves: Waves::default(),
             reflected_first: 0.0,
             reflected_second: 0.0,
-        }
+            resistance: 0.0,
+            first_share: 0.0,
+        };
+        series.refresh();
+        series
     }
 }
 
 impl<A: WaveElement, B: WaveElement> WaveElement for Series<A, B> {
     fn port_resistance(&self) -> f64 {
-        self.first.port_resistance() + self.second.port_resistance()
+        self.resistance
     }
+    #[inline]
     fn reflected(&mut self) -> f64 {
         self.reflected_first = self.first.reflected();
         self.reflected_second = self.second.reflected();
         self.waves.b = self.reflected_first + self.reflected_second;
         self.waves.b
     }
+    #[inline]
     fn incident(&mut self, a: f64) {
         self.waves.a = a;
-        let r1 = self.first.port_resistance();
-        let r = r1 + self.second.port_resistance();
         let excess = a - self.waves.b;
-        let a1 = self.reflected_first + r1 / r * excess;
+        let a1 = self.reflected_first + self.first_share * excess;
         self.first.incident(a1);
         self.second.incident(a - a1);
     }
@@ -219,9 +229,17 @@ impl<A: WaveElement, B: WaveElement> WaveElement for Series<A, B> {
     fn current(&self) -> f64 {
         self.waves.current(self.port_resistance())
     }
+    fn refresh(&mut self) {
+        self.first.refresh();
+        self.second.refresh();
+        let r1 = self.first.port_resistance();
+        self.resistance = r1 + self.second.port_resistance();
+        self.first_share = r1 / self.resistance;
+    }
 }
 
 /// Parallel adaptor, v = v1 = v2, i = i1 + i2: G = G1 + G2, b = (G1 b1 + G2 b2)/G, ak = 2v - bk.
+/// R and G1/G, G2/G are cached: call `refresh` after changing a child's resistance.
 #[derive(Clone, Debug)]
 pub struct Parallel<A, B> {
     pub first: A,
@@ -229,33 +247,41 @@ pub struct Parallel<A, B> {
     waves: Waves,
     reflected_first: f64,
     reflected_second: f64,
+    resistance: f64,
+    first_weight: f64,
+    second_weight: f64,
 }
 
 impl<A: WaveElement, B: WaveElement> Parallel<A, B> {
     pub fn new(first: A, second: B) -> Self {
-        Parallel {
+        let mut parallel = Parallel {
             first,
             second,
             waves: Waves::default(),
             reflected_first: 0.0,
             reflected_second: 0.0,
-        }
+            resistance: 0.0,
+            first_weight: 0.0,
+            second_weight: 0.0,
+        };
+        parallel.refresh();
+        parallel
     }
 }
 
 impl<A: WaveElement, B: WaveElement> WaveElement for Parallel<A, B> {
     fn port_resistance(&self) -> f64 {
-        let g = 1.0 / self.first.port_resistance() + 1.0 / self.second.port_resistance();
-        1.0 / g
+        self.resistance
     }
+    #[inline]
     fn reflected(&mut self) -> f64 {
         self.reflected_first = self.first.reflected();
         self.reflected_second = self.second.reflected();
-        let g1 = 1.0 / self.first.port_resistance();
-        let g2 = 1.0 / self.second.port_resistance();
-        self.waves.b = (g1 * self.reflected_first + g2 * self.reflected_second) / (g1 + g2);
+        self.waves.b =
+            self.first_weight * self.reflected_first + self.second_weight * self.reflected_second;
         self.waves.b
     }
+    #[inline]
     fn incident(&mut self, a: f64) {
         self.waves.a = a;
         let v = 0.5 * (a + self.waves.b);
@@ -267,6 +293,16 @@ impl<A: WaveElement, B: WaveElement> WaveElement for Parallel<A, B> {
     }
     fn current(&self) -> f64 {
         self.waves.current(self.port_resistance())
+    }
+    fn refresh(&mut self) {
+        self.first.refresh();
+        self.second.refresh();
+        let g1 = 1.0 / self.first.port_resistance();
+        let g2 = 1.0 / self.second.port_resistance();
+        let g = g1 + g2;
+        self.resistance = 1.0 / g;
+        self.first_weight = g1 / g;
+        self.second_weight = g2 / g;
     }
 }
 

@@ -187,13 +187,16 @@ fn invert<const N: usize>(mut m: [[f64; N]; N]) -> [[f64; N]; N] {
 }
 
 /// Solve the small dense system `a x = r` in place by Gaussian elimination with partial pivoting.
-#[inline]
+#[inline(always)]
 pub fn solve_in_place<const P: usize>(a: &mut [[f64; P]; P], r: &mut [f64; P]) {
     for col in 0..P {
         let mut pivot = col;
+        let mut largest = a[col][col].abs();
         for row in col + 1..P {
-            if a[row][col].abs() > a[pivot][col].abs() {
+            let m = a[row][col].abs();
+            if m > largest {
                 pivot = row;
+                largest = m;
             }
         }
         if pivot != col {
@@ -203,14 +206,15 @@ pub fn solve_in_place<const P: usize>(a: &mut [[f64; P]; P], r: &mut [f64; P]) {
         let d = a[col][col];
         let d = if d.abs() < 1e-300 { 1e-300 } else { d };
         let inv = 1.0 / d;
+        a[col][col] = d;
+        let pivot_row = a[col];
+        let pivot_r = r[col];
         for row in col + 1..P {
             let f = a[row][col] * inv;
-            if f != 0.0 {
-                for k in col..P {
-                    a[row][k] -= f * a[col][k];
-                }
-                r[row] -= f * r[col];
+            for k in col + 1..P {
+                a[row][k] -= f * pivot_row[k];
             }
+            r[row] -= f * pivot_r;
         }
     }
     for col in (0..P).rev() {
