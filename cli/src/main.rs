@@ -45,7 +45,26 @@ enum Command {
     Parts(analysis::PartsArgs),
 }
 
+/// Let a closed pipe (`breakdown parts | head`) end the program quietly, as command-line tools do, instead of
+/// `println!` panicking on the write error: restore the default action for SIGPIPE (13 on Linux and macOS).
+#[cfg(unix)]
+fn quiet_on_closed_pipe() {
+    extern "C" {
+        fn signal(signum: i32, handler: usize) -> usize;
+    }
+    const SIGPIPE: i32 = 13;
+    const SIG_DFL: usize = 0;
+    // SAFETY: installs the default disposition for one signal before any other thread exists.
+    unsafe {
+        signal(SIGPIPE, SIG_DFL);
+    }
+}
+
+#[cfg(not(unix))]
+fn quiet_on_closed_pipe() {}
+
 fn main() -> ExitCode {
+    quiet_on_closed_pipe();
     let cli = Cli::parse();
     let result = match cli.command {
         Command::Render(a) => render::run(a),

@@ -21,7 +21,8 @@
 //! [[variant]]
 //! name = "18 V / 5.6 V"
 //! positive = 18.0                   # ... or an explicit pair (volts; knee data from the 1N47xxA table)
-//! negative = 5.6
+//! negative = 5.6                    # (or a part with its own datasheet knee data, as in circuit files:
+//!                                   #  positive = { volts = 18.0, izt = 0.014, zzt = 20.0, izk = 2.5e-4, zzk = 750.0 })
 //! gain = 0.8                        # pot positions 0..1 (defaults: the plan's `gain`/`level`, else 0.8/0.5)
 //! level = 0.5
 //! quality = 4                       # oversampling 1, 2, 4, 8 or 16
@@ -81,11 +82,19 @@ struct RawAb {
 struct RawVariant {
     name: Spanned<String>,
     position: Option<Spanned<i64>>,
-    positive: Option<Spanned<f64>>,
-    negative: Option<Spanned<f64>>,
+    positive: Option<Spanned<RawPart>>,
+    negative: Option<Spanned<RawPart>>,
     gain: Option<Spanned<f64>>,
     level: Option<Spanned<f64>>,
     quality: Option<Spanned<i64>>,
+}
+
+/// A Zener in a plan: its voltage (knee data from the 1N47xxA table) or a circuit-file part table.
+#[derive(Deserialize)]
+#[serde(untagged)]
+enum RawPart {
+    Volts(f64),
+    Spec(ZenerSpec),
 }
 
 /// What sits between segments of the A/B clip.
@@ -115,10 +124,10 @@ pub struct DiEntry {
 pub enum Parts {
     /// A position of the circuit's switch.
     Position { index: usize, name: String },
-    /// An explicit pair (volts), added to the circuit as an extra switch position.
+    /// An explicit pair, added to the circuit as an extra switch position.
     Pair {
-        positive: Option<f64>,
-        negative: Option<f64>,
+        positive: Option<ZenerSpec>,
+        negative: Option<ZenerSpec>,
     },
 }
 
@@ -138,16 +147,17 @@ pub struct Variant {
 impl Variant {
     /// Human description of the parts.
     pub fn parts_description(&self) -> String {
-        let volts = |v: Option<f64>| match v {
-            Some(v) => format!("{v} V"),
+        let part = |v: &Option<ZenerSpec>| match v {
+            Some(z) if z.izt.is_some() => format!("{} V (own knee data)", z.volts),
+            Some(z) => format!("{} V (1N47xxA knee data)", z.volts),
             None => "none".to_string(),
         };
         match &self.parts {
             Parts::Position { index, name } => format!("switch position {index} ({name})"),
             Parts::Pair { positive, negative } => format!(
-                "explicit pair: positive {}, negative {} (1N47xxA knee data)",
-                volts(*positive),
-                volts(*negative)
+                "explicit pair: positive {}, negative {}",
+                part(positive),
+                part(negative)
             ),
         }
     }
@@ -259,8 +269,16 @@ fn range_of(
     Ok(x)
 }
 
-fn zener_of(ctx: &Ctx, key: &str, v: &Spanned<f64>) -> Result<f64, String> {
-    let x = *v.get_ref();
+fn zener_of(ctx: &Ctx, key: &str, v: &Spanned<RawPart>) -> Result<ZenerSpec, String> {
+    let spec = match v.get_ref() {
+        RawPart::Volts(x) => ZenerSpec::volts(*x),
+        RawPart::Spec(spec) => *spec,
+    };
+    let x = spec.volts;
+    if spec.izt.is_some() {
+        // A part with its own knee data: the circuit check (Circuit::validate) judges the figures.
+        return Ok(spec);
+    }
     if !x.is_finite() || x < ZENER_RANGE.0 || x > ZENER_RANGE.1 {
         return Err(ctx.at(
             v.span(),
@@ -270,7 +288,7 @@ fn zener_of(ctx: &Ctx, key: &str, v: &Spanned<f64>) -> Result<f64, String> {
             ),
         ));
     }
-    Ok(x)
+    Ok(spec)
 }
 
 /// Read and check a plan file. `output_override` replaces the plan's output folder (used by `demo`).
@@ -562,8 +580,8 @@ pub fn parse(path: &Path, text: &str, output_override: Option<&Path>) -> Result<
                 let negative = neg.as_ref().map(|s| zener_of(&ctx, "negative", s)).transpose()?;
                 variant_circuit.clamp.position.push(SwitchPosition {
                     name: format!("plan variant {name}"),
-                    positive: positive.map(ZenerSpec::volts),
-                    negative: negative.map(ZenerSpec::volts),
+                    positive,
+                    negative,
                 });
                 (
                     variant_circuit.clamp.position.len() - 1,
@@ -624,6 +642,41 @@ mod tests {
 
     const GOOD: &str = "di = [\"di.wav\"]\noutput = \"out\"\n\n[[variant]]\nname = \"off\"\nposition = 0\n\n\
                         [[variant]]\nname = \"asym\"\npositive = 18.0\nnegative = 5.6\ngain = 0.9\n";
+
+    #[test]
+    fn parts_printed_by_suggest_paste_into_a_plan() {
+        // `breakdown suggest` prints each part as a circuit-file table; a plan must take it unchanged, knee
+        // data included (1N52xxB parts carry their own, 1N47xxA parts take the family table).
+        use crate::analysis::suggest::e24_parts;
+        use breakdown_dsp::parts::{FAMILY_1N47XXA, FAMILY_1N52XXB};
+        let pick = |family, volts: f64| {
+            e24_parts(family)
+                .into_iter()
+                .find(|p| (p.volts - volts).abs() < 1e-9)
+                .unwrap()
+        };
+        let (pos, neg) = (pick(&FAMILY_1N52XXB, 12.0), pick(&FAMILY_1N47XXA, 6.8));
+        let d = temp("pasted");
+        let body = format!(
+            "di = [\"di.wav\"]\noutput = \"out\"\n\n[[variant]]\nname = \"pasted\"\npositive = {}\nnegative = {}\n",
+            pos.toml(),
+            neg.toml()
+        );
+        let plan = plan_in(&d, &body).unwrap();
+        match &plan.variants[0].parts {
+            Parts::Pair {
+                positive: Some(p),
+                negative: Some(n),
+            } => {
+                assert_eq!(p.volts, 12.0);
+                assert_eq!(p.izt, pos.spec.izt);
+                assert_eq!(p.zzk, pos.spec.zzk);
+                assert_eq!(n.volts, 6.8);
+                assert_eq!(n.datasheet(), neg.spec.datasheet());
+            }
+            other => panic!("expected an explicit pair, got {other:?}"),
+        }
+    }
 
     #[test]
     fn good_plan_reads_and_adds_explicit_pair_as_position() {
