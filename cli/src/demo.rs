@@ -243,13 +243,13 @@ fn riff() -> Vec<Event> {
 const RIFF_BEATS: f64 = 42.0;
 const BPM: f64 = 96.0;
 
-/// Synthesise `seconds` of the riff (looped) at `rate`, peak-normalised to `peak` full-scale units. `seed`
-/// varies the picking, so two seeds make a double-tracked pair.
-pub fn synthesize(rate: u32, seconds: f64, peak: f64, seed: u64) -> Vec<f32> {
+/// Synthesise `seconds` of the riff (looped) at `rate`, peak-normalised to `peak` full-scale units. `take`
+/// varies the picking, so two takes make a double-tracked pair.
+pub fn synthesize(rate: u32, seconds: f64, peak: f64, take: u64) -> Vec<f32> {
     let rate_f = rate as f64;
     let frames = (seconds * rate_f) as usize;
     let mut out = vec![0.0f64; frames];
-    let mut noise = Noise(0xD1_5EED ^ seed.wrapping_mul(0x2545_F491_4F6C_DD1D));
+    let mut noise = Noise(0xD1_5EED ^ take.wrapping_mul(0x2545_F491_4F6C_DD1D));
     let beat = 60.0 / BPM;
     let riff = riff();
     let mut offset = 0.0;

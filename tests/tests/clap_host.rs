@@ -1030,14 +1030,14 @@ fn damaged_state_loads_defaults_and_keeps_processing() {
     changed.flush(&[("Gain", "0.3"), ("Switch", "Pair 2"), ("Output trim", "6")]);
     let good = changed.save();
 
-    // A pseudo-random byte string (xorshift, fixed seed) with and without a plausible length prefix.
-    let mut seed = 0x2545_f491_4f6c_dd1du64;
+    // A pseudo-random byte string (xorshift from a fixed start value) with and without a plausible length prefix.
+    let mut state = 0x2545_f491_4f6c_dd1du64;
     let mut garbage: Vec<u8> = (0..600)
         .map(|_| {
-            seed ^= seed << 13;
-            seed ^= seed >> 7;
-            seed ^= seed << 17;
-            seed as u8
+            state ^= state << 13;
+            state ^= state >> 7;
+            state ^= state << 17;
+            state as u8
         })
         .collect();
     let mut prefixed = (592u64).to_le_bytes().to_vec();

@@ -51,8 +51,8 @@ impl Mix {
 }
 
 /// Variant order: rounds in which every variant plays once, shuffled, never the same variant twice in a row.
-fn order(segments: usize, variants: usize, seed: u64) -> Vec<usize> {
-    let mut mix = Mix(seed);
+fn order(segments: usize, variants: usize, shuffle_key: u64) -> Vec<usize> {
+    let mut mix = Mix(shuffle_key);
     let mut out: Vec<usize> = Vec::with_capacity(segments);
     while out.len() < segments {
         let mut round: Vec<usize> = (0..variants).collect();
@@ -75,14 +75,14 @@ pub fn layout(
     segment_seconds: f64,
     variants: usize,
     marker: Marker,
-    seed: u64,
+    shuffle_key: u64,
 ) -> Layout {
     let rate_f = rate as f64;
     let seg = ((segment_seconds * rate_f).round() as usize).max(1);
     let fade = ((FADE_SECONDS * rate_f).round() as usize).max(1);
     let gap = (GAP_SECONDS * rate_f).round() as usize;
     let count = frames.div_ceil(seg).max(1);
-    let who = order(count, variants.max(1), seed);
+    let who = order(count, variants.max(1), shuffle_key);
     let mut segments = Vec::with_capacity(count);
     let mut ticks = Vec::new();
     for (k, &variant) in who.iter().enumerate() {
