@@ -105,7 +105,7 @@ pub fn solve<const P: usize, D: RootDevices<P>>(
 }
 
 /// Solve the small dense system `a x = r` by elimination without row exchanges, accepted when the pivots
-/// stay away from zero and the entries grow at most 1e6-fold (then the rounding error stays far below what a
+/// stay away from zero and the entries of the upper factor grow at most 1e6-fold (then the rounding error stays far below what a
 /// Newton step needs); otherwise Gaussian elimination with partial pivoting.
 #[inline(always)]
 pub fn solve_small<const P: usize>(a: &[[f64; P]; P], r: &[f64; P]) -> [f64; P] {
@@ -134,14 +134,18 @@ pub fn solve_small<const P: usize>(a: &[[f64; P]; P], r: &[f64; P]) -> [f64; P] 
             let f = m[row][col] * inv;
             for k in col + 1..P {
                 m[row][k] -= f * m[col][k];
-                let v = m[row][k].abs();
-                largest_factor = if v > largest_factor {
-                    v
-                } else {
-                    largest_factor
-                };
             }
             y[row] -= f * y[col];
+        }
+    }
+    for (row, u) in m.iter().enumerate() {
+        for v in &u[row..] {
+            let v = v.abs();
+            largest_factor = if v > largest_factor {
+                v
+            } else {
+                largest_factor
+            };
         }
     }
     // A NaN anywhere gives a NaN solution here as it would with pivoting; the Newton loop rejects the step.

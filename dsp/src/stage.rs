@@ -185,7 +185,16 @@ impl StageDevices {
             let mut step = solver::solve_small(&jacobian, &rhs);
             let mut small = true;
             for n in 0..PORTS {
-                let mut s = step[n].clamp(-self.max_step[n], self.max_step[n]);
+                // Limit by comparisons (f64::clamp also checks its bounds); NaN passes to the test below.
+                let limit = self.max_step[n];
+                let s = step[n];
+                let mut s = if s > limit {
+                    limit
+                } else if s < -limit {
+                    -limit
+                } else {
+                    s
+                };
                 if !s.is_finite() {
                     s = 0.0;
                     small = false;
@@ -442,7 +451,15 @@ impl Stage {
                     self.older_unknowns[k],
                 );
                 let limit = 0.25 * self.devices.max_step[k];
-                self.unknowns[k] = x0 + (2.0 * x0 - 3.0 * x1 + x2).clamp(-limit, limit);
+                let change = 2.0 * x0 - 3.0 * x1 + x2;
+                let change = if change > limit {
+                    limit
+                } else if change < -limit {
+                    -limit
+                } else {
+                    change
+                };
+                self.unknowns[k] = x0 + change;
             }
         }
         self.older_unknowns = self.previous_unknowns;

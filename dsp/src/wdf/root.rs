@@ -124,15 +124,18 @@ impl<const N: usize, const E: usize, const P: usize> RTypeRoot<N, E, P> {
     #[inline]
     pub fn node_voltages(&self, b: &[f64; E], currents: &[f64; P]) -> [f64; N] {
         let mut x = [0.0; N];
-        for n in 0..N {
+        for (out, (waves, from_current)) in x
+            .iter_mut()
+            .zip(self.node_from_wave.iter().zip(&self.node_from_current))
+        {
             let mut sum = 0.0;
-            for e in 0..E {
-                sum += self.node_from_wave[n][e] * b[e];
+            for (m, w) in waves.iter().zip(b) {
+                sum += m * w;
             }
-            for p in 0..P {
-                sum += self.node_from_current[n][p] * currents[p];
+            for (m, i) in from_current.iter().zip(currents) {
+                sum += m * i;
             }
-            x[n] = sum;
+            *out = sum;
         }
         x
     }
