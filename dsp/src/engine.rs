@@ -140,26 +140,46 @@ impl Meters {
         if i.abs() > CLAMPED_CURRENT {
             self.clamped_samples += 1;
         }
-        self.clamp_peak_positive = self.clamp_peak_positive.max(p.clamp_volts);
-        self.clamp_peak_negative = self.clamp_peak_negative.min(p.clamp_volts);
-        self.zener_peak_current = self.zener_peak_current.max(i.abs());
+        self.clamp_peak_positive = larger(self.clamp_peak_positive, p.clamp_volts);
+        self.clamp_peak_negative = smaller(self.clamp_peak_negative, p.clamp_volts);
+        self.zener_peak_current = larger(self.zener_peak_current, i.abs());
         self.zener_current_square_sum += i * i;
         let (wp, wn) = (p.positive_part_watts(), p.negative_part_watts());
-        self.positive_part_peak_watts = self.positive_part_peak_watts.max(wp);
-        self.negative_part_peak_watts = self.negative_part_peak_watts.max(wn);
+        self.positive_part_peak_watts = larger(self.positive_part_peak_watts, wp);
+        self.negative_part_peak_watts = larger(self.negative_part_peak_watts, wn);
         self.positive_part_energy += wp * self.period;
         self.negative_part_energy += wn * self.period;
-        self.gain_grid_current_peak = self.gain_grid_current_peak.max(p.gain_grid_current);
+        self.gain_grid_current_peak = larger(self.gain_grid_current_peak, p.gain_grid_current);
         self.follower_grid_current_peak =
-            self.follower_grid_current_peak.max(p.follower_grid_current);
-        self.gain_plate_current_min = self.gain_plate_current_min.min(p.gain_plate_current);
-        self.follower_plate_current_min = self
-            .follower_plate_current_min
-            .min(p.follower_plate_current);
+            larger(self.follower_grid_current_peak, p.follower_grid_current);
+        self.gain_plate_current_min = smaller(self.gain_plate_current_min, p.gain_plate_current);
+        self.follower_plate_current_min =
+            smaller(self.follower_plate_current_min, p.follower_plate_current);
         self.newton_iterations += iterations as u64;
         if !converged {
             self.newton_failures += 1;
         }
+    }
+}
+
+/// The larger of a running extreme `a` and a new value `b` (a NaN `b` is ignored, as f64::max does), in
+/// one comparison.
+#[inline(always)]
+fn larger(a: f64, b: f64) -> f64 {
+    if b > a {
+        b
+    } else {
+        a
+    }
+}
+
+/// The smaller of a running extreme `a` and a new value `b` (a NaN `b` is ignored).
+#[inline(always)]
+fn smaller(a: f64, b: f64) -> f64 {
+    if b < a {
+        b
+    } else {
+        a
     }
 }
 

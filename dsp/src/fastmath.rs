@@ -136,6 +136,23 @@ pub fn prepare_tables() {
 /// below 1e-8 in L, checked against the standard library in the tests below); exact limits outside it.
 #[inline(always)]
 pub fn ln_softplus(z: f64) -> (f64, f64) {
+    ln_softplus_in(LnSoftplus::get(), z)
+}
+
+/// The `ln_softplus` table, fetched once for several lookups.
+#[derive(Clone, Copy)]
+pub struct LnSoftplus(&'static [[f64; 2]]);
+
+impl LnSoftplus {
+    #[inline(always)]
+    pub fn get() -> LnSoftplus {
+        LnSoftplus(ln_softplus_table())
+    }
+}
+
+/// `ln_softplus` with the table already fetched.
+#[inline(always)]
+pub fn ln_softplus_in(table: LnSoftplus, z: f64) -> (f64, f64) {
     let pos = (z - LSP_START) * LSP_PER_UNIT;
     if pos.is_nan() || pos <= 0.0 {
         // ln(ln(1 + e^z)) = z + ln(1 - e^z/2 + ...) = z to double precision below -40.
@@ -145,7 +162,7 @@ pub fn ln_softplus(z: f64) -> (f64, f64) {
         // softplus z = z + e^-z: ln z to double precision above 40.
         return (ln(z), 1.0 / z);
     }
-    let table = ln_softplus_table();
+    let table = table.0;
     // floor(pos) by the round-to-nearest shift trick on pos - 1/2 (pos is in (0, LSP_POINTS - 1) here).
     const SHIFT: f64 = 6_755_399_441_055_744.0;
     let idx = (((pos - 0.5) + SHIFT).to_bits() as u32 as usize).min(LSP_POINTS - 2);

@@ -90,7 +90,12 @@ impl Triode {
     /// Evaluated as Gg exp(xi (L(Cg Vgk) - ln Cg)) + Ig0 with L = ln softplus from `fastmath::ln_softplus`.
     #[inline]
     pub fn grid_current(vgk: f64) -> (f64, f64) {
-        let (l, dl) = fastmath::ln_softplus(GRID_CG * vgk);
+        Self::grid_current_in(fastmath::LnSoftplus::get(), vgk)
+    }
+
+    #[inline(always)]
+    fn grid_current_in(table: fastmath::LnSoftplus, vgk: f64) -> (f64, f64) {
+        let (l, dl) = fastmath::ln_softplus_in(table, GRID_CG * vgk);
         let powed = fastmath::exp(GRID_XI * (l - GRID_LN_CG));
         (
             GRID_GG * powed + GRID_IG0,
@@ -101,7 +106,8 @@ impl Triode {
     /// Plate and grid currents with their derivatives.
     #[inline]
     pub fn currents(&self, vpk: f64, vgk: f64) -> TriodeCurrents {
-        let (grid, grid_dvgk) = Self::grid_current(vgk);
+        let table = fastmath::LnSoftplus::get();
+        let (grid, grid_dvgk) = Self::grid_current_in(table, vgk);
         let mut out = TriodeCurrents {
             grid,
             grid_dvgk,
@@ -113,7 +119,7 @@ impl Triode {
         // ln E1 = ln(Vpk / kp) + L(z) with L = ln softplus (tabulated), so Ip = (2 / kg1) exp(ex ln E1).
         let inv_root = 1.0 / (self.kvb + vpk * vpk).sqrt();
         let z = self.kp * (1.0 / self.mu + vgk * inv_root);
-        let (l, dl) = fastmath::ln_softplus(z);
+        let (l, dl) = fastmath::ln_softplus_in(table, z);
         let plate = 2.0 / self.kg1 * fastmath::exp(self.ex * (fastmath::ln(vpk / self.kp) + l));
         out.plate = plate;
         // d ln E1 / dVgk = L'(z) kp / root; d ln E1 / dVpk = 1 / Vpk - L'(z) kp Vgk Vpk / root^3.
