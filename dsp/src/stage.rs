@@ -154,6 +154,12 @@ impl StageDevices {
         max_iterations: u32,
     ) -> NewtonReport {
         let mut report = NewtonReport::default();
+        // Per-unknown step limits (a trust region): when a step that hit its limit is followed by a step the
+        // other way, the limit halves, so a Newton 2-cycle (overshoot one way, then back) closes in like
+        // bisection; otherwise it grows back toward the full limit.
+        let mut limit = self.max_step;
+        let mut last_step = [0.0f64; PORTS];
+        let mut last_limited = [false; PORTS];
         while report.iterations < max_iterations {
             report.iterations += 1;
             let e = self.evaluate(x);
@@ -186,15 +192,21 @@ impl StageDevices {
             let mut small = true;
             for n in 0..PORTS {
                 // Limit by comparisons (f64::clamp also checks its bounds); NaN passes to the test below.
-                let limit = self.max_step[n];
                 let s = step[n];
-                let mut s = if s > limit {
-                    limit
-                } else if s < -limit {
-                    -limit
+                if s * last_step[n] < 0.0 && last_limited[n] {
+                    limit[n] *= 0.5;
+                } else if limit[n] < self.max_step[n] {
+                    limit[n] = (2.0 * limit[n]).min(self.max_step[n]);
+                }
+                last_limited[n] = s.abs() > limit[n];
+                let mut s = if s > limit[n] {
+                    limit[n]
+                } else if s < -limit[n] {
+                    -limit[n]
                 } else {
                     s
                 };
+                last_step[n] = s;
                 if !s.is_finite() {
                     s = 0.0;
                     small = false;
