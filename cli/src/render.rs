@@ -3,8 +3,10 @@
 //! Each channel gets its own engine (a stereo DI is two amps), rendered in parallel threads. The output is
 //! latency-compensated: output sample n lines up with input sample n.
 
+use crate::analysis::ratings::{self, RatingSource};
+use crate::analysis::SAFETY;
 use crate::audio::{self, Audio};
-use breakdown_dsp::{Circuit, Engine, Probe, Quality, Settings};
+use breakdown_dsp::{Circuit, Engine, Meters, Probe, Quality, Settings};
 use std::io::IsTerminal;
 use std::path::{Path, PathBuf};
 use std::sync::atomic::{AtomicU64, Ordering};
@@ -20,7 +22,7 @@ const PROGRESS_AFTER: Duration = Duration::from_millis(700);
 
 #[derive(clap::Args)]
 pub struct RenderArgs {
-    /// Circuit file (TOML, BRIEF section 5 keys); the built-in reference circuit when left out.
+    /// Circuit file (TOML; keys as in the README's "Circuit files"); the built-in reference circuit when left out.
     #[arg(long, value_name = "FILE")]
     pub circuit: Option<PathBuf>,
     /// Input WAV (16/24/32-bit integer or 32-bit float, mono or stereo, 22.05 to 384 kHz).
@@ -39,6 +41,15 @@ pub struct RenderArgs {
     /// Oversampling factor: 1, 2, 4, 8 or 16.
     #[arg(long, value_name = "1|2|4|8|16", default_value = "4")]
     pub quality: String,
+    /// Zener family whose power rating the load report uses: 1n47xxa (1 W) or 1n52xxb (1/2 W).
+    #[arg(long, default_value = "1n47xxa")]
+    pub family: String,
+    /// Power rating of the Zeners (W), instead of the family's.
+    #[arg(long)]
+    pub rating_watts: Option<f64>,
+    /// Voltage rating of the coupling capacitor (V), for the load report.
+    #[arg(long, default_value_t = 400.0)]
+    pub cap_rating_volts: f64,
 }
 
 /// Everything `render` needs, checked: the parsed form of the arguments.
@@ -155,7 +166,7 @@ pub fn render_channels(
     job: &Job,
     audio: &Audio,
     progress: &AtomicU64,
-) -> Result<Vec<Vec<f32>>, String> {
+) -> Result<Vec<(Vec<f32>, Meters)>, String> {
     let rate = audio.rate as f64;
     let mut engines = Vec::with_capacity(audio.channels.len());
     for _ in &audio.channels {
@@ -166,7 +177,10 @@ pub fn render_channels(
             .into_iter()
             .zip(&audio.channels)
             .map(|(mut engine, input)| {
-                scope.spawn(move || render_one(&mut engine, input, job.probe, progress))
+                scope.spawn(move || {
+                    let out = render_one(&mut engine, input, job.probe, progress);
+                    (out, *engine.meters())
+                })
             })
             .collect();
         handles
@@ -208,6 +222,23 @@ fn progress_bar(total: u64) -> indicatif::ProgressBar {
 
 pub fn run(args: RenderArgs) -> Result<(), String> {
     let job = prepare(&args)?;
+    ratings::family_by_name(&args.family)?;
+    if let Some(w) = args.rating_watts {
+        if !(w.is_finite() && w > 0.0 && w <= 100.0) {
+            return Err(format!(
+                "--rating-watts {w}: give a power rating above 0 W (up to 100 W)"
+            ));
+        }
+    }
+    if !(args.cap_rating_volts.is_finite()
+        && args.cap_rating_volts > 0.0
+        && args.cap_rating_volts <= 10_000.0)
+    {
+        return Err(format!(
+            "--cap-rating-volts {}: give the capacitor's voltage rating in volts (above 0, up to 10000)",
+            args.cap_rating_volts
+        ));
+    }
     check_output(&args.output, &args.input)?;
     let input = audio::read_wav(&args.input)?;
     if !(MIN_RATE..=MAX_RATE).contains(&input.rate) {
@@ -243,9 +274,10 @@ pub fn run(args: RenderArgs) -> Result<(), String> {
     if let Some(bar) = &bar {
         bar.finish_and_clear();
     }
+    let (channels, meters): (Vec<Vec<f32>>, Vec<Meters>) = outputs.into_iter().unzip();
     let result = Audio {
         rate: input.rate,
-        channels: outputs,
+        channels,
     };
     audio::write_wav_f32(&args.output, &result)?;
     let peak = result
@@ -273,5 +305,30 @@ pub fn run(args: RenderArgs) -> Result<(), String> {
         job.settings.position,
         job.quality.factor(),
     );
+    // The parts' load over this render (every render answers "do these parts survive?").
+    let source = match args.rating_watts {
+        None => RatingSource::Family(ratings::family_by_name(&args.family)?),
+        Some(w) => RatingSource::Watts(w),
+    };
+    let idle = Engine::new(&job.circuit, input.rate as f64, job.quality, job.settings)
+        .map_err(|e| e.0)?
+        .stage()
+        .probe()
+        .to_owned();
+    for (channel, m) in meters.iter().enumerate() {
+        let r = ratings::ratings_from_meters(
+            m,
+            &idle,
+            &job.circuit,
+            job.settings.position,
+            source,
+            args.cap_rating_volts,
+        );
+        if meters.len() > 1 {
+            println!("channel {}:", channel + 1);
+        }
+        print!("{}", ratings::ratings_text(&r));
+    }
+    println!("{SAFETY}");
     Ok(())
 }
