@@ -3,6 +3,7 @@
 //! `breakdown demo --bench` times a 3-minute stereo DI through six variants instead.
 
 use crate::audio::{self, Audio};
+use crate::compare::abclip::Mix;
 use crate::compare::{self, Options};
 use crate::report;
 use std::f64::consts::PI;
@@ -35,17 +36,12 @@ pub struct DemoArgs {
     pub quiet: bool,
 }
 
-/// Small deterministic noise source (SplitMix64).
-struct Noise(u64);
+/// Small deterministic noise source in -1..1 (the A/B clip's SplitMix64 generator).
+struct Noise(Mix);
 
 impl Noise {
     fn next(&mut self) -> f64 {
-        self.0 = self.0.wrapping_add(0x9E37_79B9_7F4A_7C15);
-        let mut z = self.0;
-        z = (z ^ (z >> 30)).wrapping_mul(0xBF58_476D_1CE4_E5B9);
-        z = (z ^ (z >> 27)).wrapping_mul(0x94D0_49BB_1331_11EB);
-        z ^= z >> 31;
-        (z >> 11) as f64 / (1u64 << 53) as f64 * 2.0 - 1.0
+        self.0.signed_unit()
     }
 }
 
@@ -249,7 +245,7 @@ pub fn synthesize(rate: u32, seconds: f64, peak: f64, take: u64) -> Vec<f32> {
     let rate_f = rate as f64;
     let frames = (seconds * rate_f) as usize;
     let mut out = vec![0.0f64; frames];
-    let mut noise = Noise(0xD1_5EED ^ take.wrapping_mul(0x2545_F491_4F6C_DD1D));
+    let mut noise = Noise(Mix(0xD1_5EED ^ take.wrapping_mul(0x2545_F491_4F6C_DD1D)));
     let beat = 60.0 / BPM;
     let riff = riff();
     let mut offset = 0.0;

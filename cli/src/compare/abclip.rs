@@ -34,16 +34,20 @@ pub struct Layout {
     pub ticks: Vec<usize>,
 }
 
-/// Small deterministic generator (SplitMix64) so a clip can be rebuilt identically.
-struct Mix(u64);
+/// Small deterministic generator (SplitMix64) so a clip (or the demo DI) can be rebuilt identically.
+pub(crate) struct Mix(pub(crate) u64);
 
 impl Mix {
-    fn next(&mut self) -> u64 {
+    pub(crate) fn next(&mut self) -> u64 {
         self.0 = self.0.wrapping_add(0x9E37_79B9_7F4A_7C15);
         let mut z = self.0;
         z = (z ^ (z >> 30)).wrapping_mul(0xBF58_476D_1CE4_E5B9);
         z = (z ^ (z >> 27)).wrapping_mul(0x94D0_49BB_1331_11EB);
         z ^ (z >> 31)
+    }
+    /// Uniform in -1..1.
+    pub(crate) fn signed_unit(&mut self) -> f64 {
+        (self.next() >> 11) as f64 / (1u64 << 53) as f64 * 2.0 - 1.0
     }
     fn below(&mut self, n: usize) -> usize {
         (self.next() % n as u64) as usize
