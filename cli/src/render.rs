@@ -3,8 +3,8 @@
 //! Each channel gets its own engine (a stereo DI is two amps), rendered in parallel threads. The output is
 //! latency-compensated: output sample n lines up with input sample n.
 
-use crate::analysis::ratings::{self, RatingSource};
-use crate::analysis::SAFETY;
+use crate::analysis::ratings;
+use crate::analysis::{RatingArgs, SAFETY};
 use crate::audio::{self, Audio};
 use breakdown_dsp::{Circuit, Engine, Meters, Probe, Quality, Settings};
 use std::io::IsTerminal;
@@ -41,15 +41,8 @@ pub struct RenderArgs {
     /// Oversampling factor: 1, 2, 4, 8 or 16.
     #[arg(long, value_name = "1|2|4|8|16", default_value = "4")]
     pub quality: String,
-    /// Zener family whose power rating the load report uses: 1n47xxa (1 W) or 1n52xxb (1/2 W).
-    #[arg(long, default_value = "1n47xxa")]
-    pub family: String,
-    /// Power rating of the Zeners (W), instead of the family's.
-    #[arg(long)]
-    pub rating_watts: Option<f64>,
-    /// Voltage rating of the coupling capacitor (V), for the load report.
-    #[arg(long, default_value_t = 400.0)]
-    pub cap_rating_volts: f64,
+    #[command(flatten)]
+    pub ratings: RatingArgs,
 }
 
 /// Everything `render` needs, checked: the parsed form of the arguments.
@@ -222,23 +215,7 @@ fn progress_bar(total: u64) -> indicatif::ProgressBar {
 
 pub fn run(args: RenderArgs) -> Result<(), String> {
     let job = prepare(&args)?;
-    ratings::family_by_name(&args.family)?;
-    if let Some(w) = args.rating_watts {
-        if !(w.is_finite() && w > 0.0 && w <= 100.0) {
-            return Err(format!(
-                "--rating-watts {w}: give a power rating above 0 W (up to 100 W)"
-            ));
-        }
-    }
-    if !(args.cap_rating_volts.is_finite()
-        && args.cap_rating_volts > 0.0
-        && args.cap_rating_volts <= 10_000.0)
-    {
-        return Err(format!(
-            "--cap-rating-volts {}: give the capacitor's voltage rating in volts (above 0, up to 10000)",
-            args.cap_rating_volts
-        ));
-    }
+    let source = args.ratings.source()?;
     check_output(&args.output, &args.input)?;
     let input = audio::read_wav(&args.input)?;
     if !(MIN_RATE..=MAX_RATE).contains(&input.rate) {
@@ -306,10 +283,6 @@ pub fn run(args: RenderArgs) -> Result<(), String> {
         job.quality.factor(),
     );
     // The parts' load over this render (every render answers "do these parts survive?").
-    let source = match args.rating_watts {
-        None => RatingSource::Family(ratings::family_by_name(&args.family)?),
-        Some(w) => RatingSource::Watts(w),
-    };
     let idle = Engine::new(&job.circuit, input.rate as f64, job.quality, job.settings)
         .map_err(|e| e.0)?
         .stage()
@@ -322,7 +295,7 @@ pub fn run(args: RenderArgs) -> Result<(), String> {
             &job.circuit,
             job.settings.position,
             source,
-            args.cap_rating_volts,
+            args.ratings.cap_rating_volts,
         );
         if meters.len() > 1 {
             println!("channel {}:", channel + 1);

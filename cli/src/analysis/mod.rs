@@ -61,15 +61,8 @@ pub struct SuggestArgs {
     /// Or a steady tone of this many peak volts at the jack.
     #[arg(long)]
     input_volts: Option<f64>,
-    /// Part family: 1n47xxa (1 W glass) or 1n52xxb (1/2 W glass).
-    #[arg(long, default_value = "1n47xxa")]
-    family: String,
-    /// Power rating to judge the parts against instead of the family's (W).
-    #[arg(long)]
-    rating_watts: Option<f64>,
-    /// Coupling capacitor voltage rating (V).
-    #[arg(long, default_value_t = 400.0)]
-    cap_rating_volts: f64,
+    #[command(flatten)]
+    ratings: RatingArgs,
     /// Oversampling factor of the renders (1, 2, 4, 8, 16).
     #[arg(long, default_value = "2")]
     quality: String,
@@ -95,15 +88,8 @@ pub struct PartsArgs {
     /// Worst-case gain pot rotation.
     #[arg(long, default_value_t = 1.0)]
     worst_gain: f64,
-    /// Part family the ratings are judged against: 1n47xxa (1 W) or 1n52xxb (1/2 W).
-    #[arg(long, default_value = "1n47xxa")]
-    family: String,
-    /// Power rating to judge the parts against instead of the family's (W).
-    #[arg(long)]
-    rating_watts: Option<f64>,
-    /// Coupling capacitor voltage rating (V).
-    #[arg(long, default_value_t = 400.0)]
-    cap_rating_volts: f64,
+    #[command(flatten)]
+    ratings: RatingArgs,
     /// Oversampling factor of the renders (1, 2, 4, 8, 16).
     #[arg(long, default_value = "2")]
     quality: String,
@@ -177,6 +163,28 @@ pub fn onset(a: OnsetArgs) -> Result<(), String> {
     println!("{SAFETY}");
     Ok(())
 }
+/// How a command judges the parts' load: shared by `render`, `suggest` and `parts`.
+#[derive(clap::Args)]
+pub struct RatingArgs {
+    /// Part family the ratings are judged against: 1n47xxa (1 W glass) or 1n52xxb (1/2 W glass).
+    #[arg(long, default_value = "1n47xxa")]
+    pub family: String,
+    /// Power rating to judge the parts against instead of the family's (W).
+    #[arg(long)]
+    pub rating_watts: Option<f64>,
+    /// Coupling capacitor voltage rating (V).
+    #[arg(long, default_value_t = 400.0)]
+    pub cap_rating_volts: f64,
+}
+
+impl RatingArgs {
+    /// The rating to judge the Zeners against; checks the capacitor rating as well.
+    pub fn source(&self) -> Result<ratings::RatingSource, String> {
+        check_volts("--cap-rating-volts", self.cap_rating_volts, 10_000.0)?;
+        rating_source(&self.family, self.rating_watts)
+    }
+}
+
 fn rating_source(family: &str, watts: Option<f64>) -> Result<ratings::RatingSource, String> {
     let f = ratings::family_by_name(family)?;
     match watts {
@@ -233,9 +241,8 @@ pub fn di_stimulus(
 pub fn suggest(a: SuggestArgs) -> Result<(), String> {
     let rig = rig_from(a.circuit.as_deref(), &a.set, &a.quality)?;
     let goal = suggest::parse_goal(&a.goal)?;
-    let family = ratings::family_by_name(&a.family)?;
-    let source = rating_source(&a.family, a.rating_watts)?;
-    check_volts("--cap-rating-volts", a.cap_rating_volts, 10_000.0)?;
+    let family = ratings::family_by_name(&a.ratings.family)?;
+    let source = a.ratings.source()?;
     check_tone(a.tone_hz)?;
     let stimulus = match (&a.di, a.input_volts) {
         (Some(p), _) => {
@@ -265,7 +272,7 @@ pub fn suggest(a: SuggestArgs) -> Result<(), String> {
     print!("{}", suggest::suggestion_text(&s));
     if let Some(best) = s.candidates.first() {
         let top = rig.with_pair(Some(best.positive.spec), Some(best.negative.spec));
-        let (r, _) = ratings::ratings(&top, &stimulus, source, a.cap_rating_volts)?;
+        let (r, _) = ratings::ratings(&top, &stimulus, source, a.ratings.cap_rating_volts)?;
         println!("\nBest pair {}:", best.name());
         print!("{}", ratings::ratings_text(&r));
         let spread = ratings::tolerance_spread(&top, &stimulus, 0.05)?;
@@ -286,13 +293,12 @@ pub fn suggest(a: SuggestArgs) -> Result<(), String> {
 
 pub fn parts(a: PartsArgs) -> Result<(), String> {
     let rig = rig_from(a.circuit.as_deref(), &a.set, &a.quality)?;
-    let source = rating_source(&a.family, a.rating_watts)?;
+    let source = a.ratings.source()?;
     check_volts(
         "--input-volts",
         a.input_volts,
         breakdown_dsp::engine::INPUT_LIMIT_VOLTS,
     )?;
-    check_volts("--cap-rating-volts", a.cap_rating_volts, 10_000.0)?;
     check_tone(a.tone_hz)?;
     if !(0.0..=1.0).contains(&a.worst_gain) {
         return Err(format!(
@@ -311,7 +317,8 @@ pub fn parts(a: PartsArgs) -> Result<(), String> {
         input_volts: a.input_volts,
         tone_hz: a.tone_hz,
     };
-    let (lines, _) = partslist::parts_list(&rig, &positions, worst, source, a.cap_rating_volts)?;
+    let (lines, _) =
+        partslist::parts_list(&rig, &positions, worst, source, a.ratings.cap_rating_volts)?;
     let text = format!("{}\n{SAFETY}\n", partslist::to_text(&lines, worst));
     std::fs::create_dir_all(&a.out)
         .map_err(|e| format!("cannot create {}: {e}", a.out.display()))?;
