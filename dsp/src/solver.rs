@@ -45,7 +45,7 @@ pub struct NewtonReport {
     pub converged: bool,
 }
 
-/// Solve v(x) - p - K i(x) = 0 from the seed in `x`; leaves the solution in `x` and its port currents
+/// Solve v(x) - p - K i(x) = 0 from the starting point in `x`; leaves the solution in `x` and its port currents
 /// (first-order corrected to the final step) in `eval`.
 #[inline]
 pub fn solve<const P: usize, D: RootDevices<P>>(

@@ -141,7 +141,7 @@ impl StageDevices {
         }
     }
 
-    /// Damped Newton on v(x) - p - K i(x) = 0 (K-method form) from the seed in `x`, with each unknown's step
+    /// Damped Newton on v(x) - p - K i(x) = 0 (K-method form) from the starting point in `x`, with each unknown's step
     /// limited as SPICE limits junction steps; stops when every step is within its tolerance. Leaves the
     /// solution in `x` and its port currents (first-order corrected through the last step) in `eval`.
     #[inline]
@@ -452,7 +452,7 @@ impl Stage {
             self.level_network.reflected(),
         ];
         let p = self.root.open_port_voltages(&b);
-        let seed = self.unknowns;
+        let last_solution = self.unknowns;
         // Predictor: quadratic extrapolation through the last three solutions (they move smoothly), kept
         // within a quarter of each unknown's Newton step limit of the last solution.
         if max_iterations == MAX_ITERATIONS {
@@ -475,7 +475,7 @@ impl Stage {
             }
         }
         self.older_unknowns = self.previous_unknowns;
-        self.previous_unknowns = seed;
+        self.previous_unknowns = last_solution;
         self.last_report = self.devices.solve(
             &self.root.port_from_current,
             &p,
@@ -485,7 +485,7 @@ impl Stage {
         );
         if !self.last_report.converged {
             // Start again from the last solution without the prediction, with a larger budget.
-            self.unknowns = seed;
+            self.unknowns = last_solution;
             let retry = self.devices.solve(
                 &self.root.port_from_current,
                 &p,
@@ -499,8 +499,8 @@ impl Stage {
             };
         }
         if !self.unknowns.iter().all(|v| v.is_finite()) {
-            self.unknowns = seed;
-            self.eval = self.devices.evaluate(&seed);
+            self.unknowns = last_solution;
+            self.eval = self.devices.evaluate(&last_solution);
         }
         let currents = self.eval.current;
         let nodes = self.root.node_voltages(&b, &currents);
