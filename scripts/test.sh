@@ -24,4 +24,11 @@ fi
 
 # Regenerate the ngspice reference data and compare with the committed copy (about two minutes).
 export BREAKDOWN_REGENERATE="${BREAKDOWN_REGENERATE:-1}"
-cargo test --release --workspace
+log="$(mktemp)"
+status=0
+cargo test --release --workspace 2>&1 | tee "$log" || status=$?
+# One closing line for the whole run (cargo ends with per-crate doc-test lines that often count 0 tests).
+awk '/^test result:/ { for (i = 1; i <= NF; i++) { if ($(i) ~ /^passed/) p += $(i-1); if ($(i) ~ /^failed/) f += $(i-1) } }
+     END { printf "%d passed, %d failed\n", p, f }' "$log"
+rm -f "$log"
+exit "$status"
