@@ -302,19 +302,24 @@ impl Circuit {
     pub fn check_position(&self, index: usize) -> Result<(), CircuitError> {
         let count = self.clamp.position.len();
         if index >= count {
-            let names: Vec<String> = self
-                .clamp
-                .position
-                .iter()
-                .enumerate()
-                .map(|(i, p)| format!("{i} = {}", p.name))
-                .collect();
             return Err(CircuitError(format!(
                 "position {index} is past the end of the switch list ({count} positions: {})",
-                names.join(", ")
+                self.position_list()
             )));
         }
         Ok(())
+    }
+
+    /// The switch positions as "0 = name, 1 = name, ...", for messages.
+    pub fn position_list(&self) -> String {
+        let names: Vec<String> = self
+            .clamp
+            .position
+            .iter()
+            .enumerate()
+            .map(|(i, p)| format!("{i} = {}", p.name))
+            .collect();
+        names.join(", ")
     }
 }
 

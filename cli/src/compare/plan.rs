@@ -540,19 +540,12 @@ pub fn parse(path: &Path, text: &str, output_override: Option<&Path>) -> Result<
             (Some(p), None, None) => {
                 let count = circuit.clamp.position.len();
                 let index = usize::try_from(*p.get_ref()).ok().filter(|i| *i < count).ok_or_else(|| {
-                    let list: Vec<String> = circuit
-                        .clamp
-                        .position
-                        .iter()
-                        .enumerate()
-                        .map(|(i, p)| format!("{i} = {}", p.name))
-                        .collect();
                     ctx.at(
                         p.span(),
                         format!(
                             "position = {} is impossible: the switch has {count} positions ({})",
                             p.get_ref(),
-                            list.join(", ")
+                            circuit.position_list()
                         ),
                     )
                 })?;
