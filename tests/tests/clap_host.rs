@@ -35,7 +35,9 @@ use clap_sys::plugin::clap_plugin;
 use clap_sys::process::{clap_process, CLAP_PROCESS_ERROR};
 use clap_sys::stream::{clap_istream, clap_ostream};
 use clap_sys::version::CLAP_VERSION;
-use plugin_host::{di_signal, ensure_bundles, max_diff, peak, reference_render, PluginSettings};
+use plugin_host::{
+    c_text, di_signal, ensure_bundles, max_diff, peak, reference_render, PluginSettings,
+};
 use std::ffi::{c_char, c_void, CStr, CString};
 use std::ptr;
 use std::sync::atomic::{AtomicBool, AtomicUsize, Ordering};
@@ -265,15 +267,6 @@ struct Instance {
     steady_time: i64,
 }
 
-fn c_str(chars: &[c_char]) -> String {
-    let bytes: Vec<u8> = chars
-        .iter()
-        .take_while(|c| **c != 0)
-        .map(|c| *c as u8)
-        .collect();
-    String::from_utf8_lossy(&bytes).into_owned()
-}
-
 impl Instance {
     fn new() -> Instance {
         let m = module();
@@ -329,7 +322,7 @@ impl Instance {
                 assert!(unsafe { (params.get_info.unwrap())(self.plugin, i, &mut info) });
                 ParamInfo {
                     id: info.id,
-                    name: c_str(&info.name),
+                    name: c_text(&info.name),
                     min: info.min_value,
                     max: info.max_value,
                     default: info.default_value,

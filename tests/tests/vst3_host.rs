@@ -8,7 +8,9 @@
 mod plugin_host;
 
 use breakdown_dsp::Quality;
-use plugin_host::{di_signal, ensure_bundles, max_diff, peak, reference_render, PluginSettings};
+use plugin_host::{
+    c_text, di_signal, ensure_bundles, max_diff, peak, reference_render, PluginSettings,
+};
 use std::ffi::{c_char, c_void};
 use std::path::Path;
 use std::process::Command;
@@ -88,15 +90,6 @@ struct FactoryVtbl {
     get_class_info2: unsafe extern "C" fn(*mut c_void, i32, *mut PClassInfo2) -> i32,
 }
 
-fn text(chars: &[c_char]) -> String {
-    let bytes: Vec<u8> = chars
-        .iter()
-        .take_while(|c| **c != 0)
-        .map(|c| *c as u8)
-        .collect();
-    String::from_utf8_lossy(&bytes).into_owned()
-}
-
 unsafe fn vtbl<'a>(obj: *mut c_void) -> &'a FactoryVtbl {
     // A COM object starts with a pointer to its vtable.
     unsafe { &**(obj as *const *const FactoryVtbl) }
@@ -146,7 +139,7 @@ fn vst3_factory_exports_an_audio_effect_named_breakdown() {
 
         let mut info: PFactoryInfo = std::mem::zeroed();
         assert_eq!((v.get_factory_info)(factory, &mut info), K_RESULT_OK);
-        let vendor = text(&info.vendor);
+        let vendor = c_text(&info.vendor);
         assert_eq!(vendor, "Breakdown project", "factory vendor");
 
         let count = (v.count_classes)(factory);
@@ -155,7 +148,7 @@ fn vst3_factory_exports_an_audio_effect_named_breakdown() {
         for i in 0..count {
             let mut ci: PClassInfo = std::mem::zeroed();
             assert_eq!((v.get_class_info)(factory, i, &mut ci), K_RESULT_OK);
-            let (category, name) = (text(&ci.category), text(&ci.name));
+            let (category, name) = (c_text(&ci.category), c_text(&ci.name));
             eprintln!("class {i}: category {category:?}, name {name:?}");
             if category == AUDIO_EFFECT_CLASS && name == "Breakdown" {
                 found = Some((i, ci.cid));
@@ -171,16 +164,16 @@ fn vst3_factory_exports_an_audio_effect_named_breakdown() {
         assert_eq!(r, K_RESULT_OK, "queryInterface(IPluginFactory2) = {r}");
         let mut ci2: PClassInfo2 = std::mem::zeroed();
         assert_eq!((vtbl(f2).get_class_info2)(f2, index, &mut ci2), K_RESULT_OK);
-        let subs = text(&ci2.sub_categories);
+        let subs = c_text(&ci2.sub_categories);
         assert!(
             subs.split('|').any(|s| s == "Fx"),
             "subcategories {subs:?} lack \"Fx\""
         );
-        assert_eq!(text(&ci2.name), "Breakdown");
+        assert_eq!(c_text(&ci2.name), "Breakdown");
         assert!(
-            text(&ci2.sdk_version).starts_with("VST"),
+            c_text(&ci2.sdk_version).starts_with("VST"),
             "sdkVersion {:?}",
-            text(&ci2.sdk_version)
+            c_text(&ci2.sdk_version)
         );
         (vtbl(f2).release)(f2);
         (v.release)(factory);

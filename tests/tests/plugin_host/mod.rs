@@ -238,3 +238,13 @@ pub fn max_diff(a: &[f32], b: &[f32]) -> (f32, usize) {
 pub fn peak(x: &[f32]) -> f32 {
     x.iter().fold(0.0f32, |m, v| m.max(v.abs()))
 }
+
+/// A NUL-terminated C character array (as plugin APIs fill in names) as a Rust string.
+pub fn c_text(chars: &[std::ffi::c_char]) -> String {
+    let bytes: Vec<u8> = chars
+        .iter()
+        .take_while(|c| **c != 0)
+        .map(|c| *c as u8)
+        .collect();
+    String::from_utf8_lossy(&bytes).into_owned()
+}
