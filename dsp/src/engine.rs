@@ -4,6 +4,7 @@
 use crate::circuit::{Circuit, CircuitError, Settings};
 use crate::oversampling::{self, Downsampler, Quality, Upsampler};
 use crate::pot::PotLaw;
+use crate::solver::NewtonReport;
 use crate::stage::{Stage, StageProbe};
 
 /// Largest voltage at the input jack the model accepts; anything beyond (or not finite) is limited first.
@@ -89,6 +90,8 @@ pub struct Meters {
     pub follower_plate_current_min: f64,
     pub newton_iterations: u64,
     pub newton_failures: u64,
+    /// Samples solved by a chord step (the previous LU factors reused).
+    pub chord_steps: u64,
     /// Internal sample period (s).
     pub period: f64,
 }
@@ -134,7 +137,7 @@ impl Meters {
     pub fn clamp_peak_to_peak(&self) -> f64 {
         self.clamp_peak_positive - self.clamp_peak_negative
     }
-    fn record(&mut self, p: &StageProbe, iterations: u32, converged: bool) {
+    fn record(&mut self, p: &StageProbe, report: NewtonReport) {
         self.samples += 1;
         let i = p.zener_current;
         if i.abs() > CLAMPED_CURRENT {
@@ -155,10 +158,9 @@ impl Meters {
         self.gain_plate_current_min = smaller(self.gain_plate_current_min, p.gain_plate_current);
         self.follower_plate_current_min =
             smaller(self.follower_plate_current_min, p.follower_plate_current);
-        self.newton_iterations += iterations as u64;
-        if !converged {
-            self.newton_failures += 1;
-        }
+        self.newton_iterations += report.iterations as u64;
+        self.newton_failures += u64::from(!report.converged);
+        self.chord_steps += u64::from(report.chord);
     }
 }
 
@@ -420,7 +422,7 @@ impl Engine {
             let p = *self.stage.process(self.high_in[k]);
             let report = self.stage.last_report();
             let values = Self::probe_values(&p, self.listen_units_per_volt);
-            self.meters.record(&p, report.iterations, report.converged);
+            self.meters.record(&p, report);
             for (probe, v) in values.iter().enumerate() {
                 self.high_out[probe][k] = *v;
             }

@@ -15,7 +15,7 @@ use crate::circuit::{Circuit, Placement};
 use crate::devices::triode::Triode;
 use crate::devices::zener::{ZenerPair, CURRENT_SCALE};
 use crate::pot::PotLaw;
-use crate::solver::{self, NewtonReport};
+use crate::solver::{self, NewtonReport, SmallLu};
 use crate::wdf::{
     Capacitor, Parallel, RTypeRoot, ResistiveVoltageSource, Resistor, Series, Terminal, WaveElement,
 };
@@ -37,6 +37,8 @@ const ZENER_PORT: usize = 4; // pair, unknown s = asinh(I / CURRENT_SCALE)
 const PORTS: usize = 5;
 const MAX_ITERATIONS: u32 = 40;
 const DC_ITERATIONS: u32 = 500;
+/// Largest change of a Jacobian column, relative to its size, for which the last LU factors still serve.
+const CHORD_DRIFT: f64 = 0.02;
 
 /// Everything the stage knows after one sample, in volts and amps.
 #[derive(Clone, Copy, Debug, Default, PartialEq)]
@@ -81,6 +83,12 @@ struct StageDevices {
     active_pair: usize,
     max_step: [f64; PORTS],
     tolerance: [f64; PORTS],
+    /// Largest |K| entry per column (see `set_coupling`).
+    column_weight: [f64; PORTS],
+    /// LU factors of the last Jacobian and the device slopes it was built from.
+    chord: Option<(SmallLu<PORTS>, DeviceEval)>,
+    /// `CHORD_DRIFT`, or 0 to factor afresh every sample (tests compare the two).
+    chord_drift: f64,
 }
 
 /// Device currents and derivatives at one Newton point, in the stage's fixed sparsity: each valve's plate
@@ -141,12 +149,61 @@ impl StageDevices {
         }
     }
 
+    /// Largest |K| entry in each column: how strongly each unknown's device slopes enter the Jacobian (ohms;
+    /// for the pair, per unit of its current slope). Call after every change of K.
+    fn set_coupling(&mut self, k: &[[f64; PORTS]; PORTS]) {
+        for port in 0..PORTS {
+            self.column_weight[port] = k.iter().map(|row| row[port].abs()).fold(0.0, f64::max);
+        }
+        self.chord = None;
+    }
+
+    /// Whether the Jacobian at `now` differs from the factored one at `then` by at most `CHORD_DRIFT` of each
+    /// column's size, so a step with the old factors is a good Newton step (a chord step).
+    #[inline(always)]
+    fn jacobian_close(&self, then: &DeviceEval, now: &DeviceEval) -> bool {
+        let w = &self.column_weight;
+        let columns = [
+            (
+                w[0] * (now.gain_plate_dvpk - then.gain_plate_dvpk).abs(),
+                1.0 + w[0] * then.gain_plate_dvpk.abs(),
+            ),
+            (
+                w[0] * (now.gain_plate_dvgk - then.gain_plate_dvgk).abs()
+                    + w[1] * (now.gain_grid_dvgk - then.gain_grid_dvgk).abs(),
+                1.0 + w[0] * then.gain_plate_dvgk.abs() + w[1] * then.gain_grid_dvgk.abs(),
+            ),
+            (
+                w[2] * (now.follower_plate_dvpk - then.follower_plate_dvpk).abs(),
+                1.0 + w[2] * then.follower_plate_dvpk.abs(),
+            ),
+            (
+                w[2] * (now.follower_plate_dvgk - then.follower_plate_dvgk).abs()
+                    + w[3] * (now.follower_grid_dvgk - then.follower_grid_dvgk).abs(),
+                1.0 + w[2] * then.follower_plate_dvgk.abs() + w[3] * then.follower_grid_dvgk.abs(),
+            ),
+            (
+                (now.pair_volts_ds - then.pair_volts_ds).abs()
+                    + w[4] * (now.pair_current_ds - then.pair_current_ds).abs(),
+                then.pair_volts_ds.abs() + w[4] * then.pair_current_ds.abs(),
+            ),
+        ];
+        let mut close = true;
+        for (change, size) in columns {
+            close &= change <= self.chord_drift * size;
+        }
+        close
+    }
+
     /// Damped Newton on v(x) - p - K i(x) = 0 (K-method form) from the starting point in `x`, with each unknown's step
     /// limited as SPICE limits junction steps; stops when every step is within its tolerance. Leaves the
     /// solution in `x` and its port currents (first-order corrected through the last step) in `eval`.
+    /// The first step reuses the last LU factors while the device slopes stay within `CHORD_DRIFT` of
+    /// theirs (a chord step; accepted only when it is already within tolerance), so most samples need no
+    /// new factorisation.
     #[inline]
     fn solve(
-        &self,
+        &mut self,
         k: &[[f64; PORTS]; PORTS],
         p: &[f64; PORTS],
         x: &mut [f64; PORTS],
@@ -166,13 +223,38 @@ impl StageDevices {
             *eval = e;
             let i = &e.current;
             let v = [x[0], x[1], x[2], x[3], e.pair_volts];
-            // Right-hand side p - v + K i and Jacobian dv/dx - K di/dx, written out for the fixed sparsity.
+            // Right-hand side p - v + K i.
             let mut rhs = [0.0; PORTS];
-            let mut jacobian = [[0.0; PORTS]; PORTS];
             for row in 0..PORTS {
                 let kr = &k[row];
                 rhs[row] = p[row] - v[row]
                     + (kr[0] * i[0] + kr[1] * i[1] + kr[2] * i[2] + kr[3] * i[3] + kr[4] * i[4]);
+            }
+            if report.iterations == 1 {
+                if let (Some((lu, then)), true) = (&self.chord, self.chord_drift > 0.0) {
+                    if self.jacobian_close(then, &e) {
+                        let step = lu.solve(&rhs);
+                        let mut small = true;
+                        for n in 0..PORTS {
+                            // Written so that a NaN fails the test.
+                            small &= step[n].abs() <= self.tolerance[n];
+                        }
+                        if small {
+                            for n in 0..PORTS {
+                                x[n] += step[n];
+                            }
+                            e.carry_currents(&step, &mut eval.current);
+                            report.converged = true;
+                            report.chord = true;
+                            return report;
+                        }
+                    }
+                }
+            }
+            // Jacobian dv/dx - K di/dx, written out for the fixed sparsity.
+            let mut jacobian = [[0.0; PORTS]; PORTS];
+            for row in 0..PORTS {
+                let kr = &k[row];
                 jacobian[row] = [
                     -(kr[GAIN_PLATE_PORT] * e.gain_plate_dvpk),
                     -(kr[GAIN_PLATE_PORT] * e.gain_plate_dvgk
@@ -188,7 +270,8 @@ impl StageDevices {
             jacobian[2][2] += 1.0;
             jacobian[3][3] += 1.0;
             jacobian[4][4] += e.pair_volts_ds;
-            let mut step = solver::solve_small(&jacobian, &rhs);
+            let (mut step, factors) = solver::solve_small(&jacobian, &rhs);
+            self.chord = factors.map(|lu| (lu, e));
             let mut small = true;
             for n in 0..PORTS {
                 // Limit by comparisons (f64::clamp also checks its bounds); NaN passes to the test below.
@@ -216,21 +299,27 @@ impl StageDevices {
                 small &= s.abs() <= self.tolerance[n];
             }
             if small {
-                // Carry the currents through the last (tiny) step to first order.
-                let c = &mut eval.current;
-                c[GAIN_PLATE_PORT] += e.gain_plate_dvpk * step[GAIN_PLATE_PORT]
-                    + e.gain_plate_dvgk * step[GAIN_GRID_PORT];
-                c[GAIN_GRID_PORT] += e.gain_grid_dvgk * step[GAIN_GRID_PORT];
-                c[FOLLOWER_PLATE_PORT] += e.follower_plate_dvpk * step[FOLLOWER_PLATE_PORT]
-                    + e.follower_plate_dvgk * step[FOLLOWER_GRID_PORT];
-                c[FOLLOWER_GRID_PORT] += e.follower_grid_dvgk * step[FOLLOWER_GRID_PORT];
-                c[ZENER_PORT] += e.pair_current_ds * step[ZENER_PORT];
+                e.carry_currents(&step, &mut eval.current);
                 report.converged = true;
                 return report;
             }
         }
         *eval = self.evaluate(x);
         report
+    }
+}
+
+impl DeviceEval {
+    /// Carry the port currents through a last (tiny) step of the unknowns, to first order.
+    #[inline(always)]
+    fn carry_currents(&self, step: &[f64; PORTS], current: &mut [f64; PORTS]) {
+        current[GAIN_PLATE_PORT] += self.gain_plate_dvpk * step[GAIN_PLATE_PORT]
+            + self.gain_plate_dvgk * step[GAIN_GRID_PORT];
+        current[GAIN_GRID_PORT] += self.gain_grid_dvgk * step[GAIN_GRID_PORT];
+        current[FOLLOWER_PLATE_PORT] += self.follower_plate_dvpk * step[FOLLOWER_PLATE_PORT]
+            + self.follower_plate_dvgk * step[FOLLOWER_GRID_PORT];
+        current[FOLLOWER_GRID_PORT] += self.follower_grid_dvgk * step[FOLLOWER_GRID_PORT];
+        current[ZENER_PORT] += self.pair_current_ds * step[ZENER_PORT];
     }
 }
 
@@ -305,6 +394,9 @@ impl Stage {
                 max_step: [50.0, 5.0, 50.0, 5.0, 4.0],
                 // Step sizes below which Newton stops; the error left is about the square of these.
                 tolerance: [1e-3, 1e-4, 1e-3, 1e-4, 1e-3],
+                column_weight: [0.0; PORTS],
+                chord: None,
+                chord_drift: CHORD_DRIFT,
             },
             root: RTypeRoot::new(
                 [
@@ -377,12 +469,14 @@ impl Stage {
         self.set_level_legs(level);
         let r = self.edge_resistances();
         self.root.update(&r);
+        self.devices.set_coupling(&self.root.port_from_current);
     }
 
     /// Select the Zener pair of switch position `position` (clamped to the list).
     pub fn set_position(&mut self, position: usize) {
         let last = self.devices.pairs.len().saturating_sub(1);
         self.devices.active_pair = position.min(last);
+        self.devices.chord = None;
         self.unknowns[ZENER_PORT] = 0.0;
         self.previous_unknowns[ZENER_PORT] = 0.0;
         self.older_unknowns[ZENER_PORT] = 0.0;
@@ -395,6 +489,7 @@ impl Stage {
         } else {
             self.devices.pairs.push(pair);
         }
+        self.devices.chord = None;
     }
 
     /// The pair at `position`.
@@ -415,6 +510,7 @@ impl Stage {
         self.coupling_feed.first.first.discretise(None);
         let r = self.edge_resistances();
         self.root.update(&r);
+        self.devices.set_coupling(&self.root.port_from_current);
         self.unknowns = [150.0, -1.5, 150.0, -1.0, 0.0];
         self.step(DC_ITERATIONS);
         self.previous_unknowns = self.unknowns;
@@ -427,6 +523,7 @@ impl Stage {
         self.coupling_feed.first.first.charge_to(coupling_volts);
         let r = self.edge_resistances();
         self.root.update(&r);
+        self.devices.set_coupling(&self.root.port_from_current);
         // One silent sample in transient mode to settle every wave on the new discretisation.
         self.step(DC_ITERATIONS);
         self.previous_unknowns = self.unknowns;
@@ -496,6 +593,7 @@ impl Stage {
             self.last_report = solver::NewtonReport {
                 iterations: self.last_report.iterations + retry.iterations,
                 converged: retry.converged,
+                chord: false,
             };
         }
         if !self.unknowns.iter().all(|v| v.is_finite()) {
@@ -547,5 +645,44 @@ impl Stage {
     /// Current scale of the Zener unknown (A), for diagnostics.
     pub fn zener_current_scale() -> f64 {
         CURRENT_SCALE
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// Chord steps (reused factors) change the answer by far less than the Newton tolerance would allow to
+    /// be heard: the clamp node of a hard-driven stage matches a fresh factorisation every sample.
+    #[test]
+    fn chord_steps_match_fresh_factorisation() {
+        let circuit = Circuit::reference();
+        let rate = 192_000.0;
+        let mut with_chord = Stage::new(&circuit, rate, 0.5, 1);
+        let mut fresh = Stage::new(&circuit, rate, 0.5, 1);
+        fresh.devices.chord_drift = 0.0;
+        let mut chord_steps = 0usize;
+        let mut worst = 0.0f64;
+        let samples = 38_400;
+        for n in 0..samples {
+            let t = n as f64 / rate;
+            // A 220 Hz tone swelling from clean to far past the clamp, with a 5x harmonic on top.
+            let envelope = 8.0 * (t / 0.2).min(1.0);
+            let input = envelope
+                * ((2.0 * std::f64::consts::PI * 220.0 * t).sin()
+                    + 0.3 * (2.0 * std::f64::consts::PI * 1100.0 * t).sin());
+            let a = with_chord.process(input).clamp_volts;
+            chord_steps += usize::from(with_chord.last_report().chord);
+            let b = fresh.process(input).clamp_volts;
+            assert!(!fresh.last_report().chord);
+            worst = worst.max((a - b).abs());
+        }
+        assert!(
+            chord_steps > samples / 4,
+            "chord steps were rarely used: {chord_steps} of {samples}"
+        );
+        eprintln!("chord steps {chord_steps} of {samples}, largest difference {worst:.2e} V");
+        // Newton's own step tolerance is 1 mV on the plate unknowns; the two solves must agree within it.
+        assert!(worst < 1e-3, "chord and fresh solves differ by {worst} V");
     }
 }
