@@ -235,13 +235,13 @@ impl StageDevices {
                     if self.jacobian_close(then, &e) {
                         let step = lu.solve(&rhs);
                         let mut small = true;
-                        for n in 0..PORTS {
+                        for (s, tolerance) in step.iter().zip(&self.tolerance) {
                             // Written so that a NaN fails the test.
-                            small &= step[n].abs() <= self.tolerance[n];
+                            small &= s.abs() <= *tolerance;
                         }
                         if small {
-                            for n in 0..PORTS {
-                                x[n] += step[n];
+                            for (x, s) in x.iter_mut().zip(&step) {
+                                *x += s;
                             }
                             e.carry_currents(&step, &mut eval.current);
                             report.converged = true;
