@@ -13,7 +13,7 @@
 
 use crate::circuit::{Circuit, Placement};
 use crate::devices::triode::Triode;
-use crate::devices::zener::{ZenerPair, CURRENT_SCALE};
+use crate::devices::zener::{PairPoint, ZenerPair, CURRENT_SCALE};
 use crate::pot::PotLaw;
 use crate::solver::{self, NewtonReport, SmallLu};
 use crate::wdf::{
@@ -85,6 +85,8 @@ struct StageDevices {
     tolerance: [f64; PORTS],
     /// Largest |K| entry per column (see `set_coupling`).
     column_weight: [f64; PORTS],
+    /// K by columns: `k_columns[port]` is the port voltages per unit current of `port`.
+    k_columns: [[f64; PORTS]; PORTS],
     /// LU factors of the last Jacobian and the device slopes it was built from.
     chord: Option<(SmallLu<PORTS>, DeviceEval)>,
     /// `CHORD_DRIFT`, or 0 to factor afresh every sample (tests compare the two).
@@ -100,6 +102,9 @@ struct DeviceEval {
     /// Pair voltage and dV/ds (the valve ports' voltages are their unknowns themselves).
     pair_volts: f64,
     pair_volts_ds: f64,
+    /// The negative-clamp part's share of the pair voltage and its dV/ds.
+    negative_part_volts: f64,
+    negative_part_volts_ds: f64,
     /// d(gain plate current)/d(Vpk, Vgk), d(gain grid current)/dVgk.
     gain_plate_dvpk: f64,
     gain_plate_dvgk: f64,
@@ -122,30 +127,35 @@ impl StageDevices {
             .follower_valve
             .currents(x[FOLLOWER_PLATE_PORT], x[FOLLOWER_GRID_PORT]);
         let pair = &self.pairs[self.active_pair];
-        let (pair_volts, pair_volts_ds, pair_current, pair_current_ds) = if pair.is_open() {
+        let point = if pair.is_open() {
             // No parts: the unknown is the open port's voltage and no current flows.
-            (x[ZENER_PORT], 1.0, 0.0, 0.0)
+            PairPoint {
+                volts: x[ZENER_PORT],
+                volts_ds: 1.0,
+                ..Default::default()
+            }
         } else {
-            let point = pair.port(x[ZENER_PORT]);
-            (point.volts, point.volts_ds, point.current, point.current_ds)
+            pair.port(x[ZENER_PORT])
         };
         let mut current = [0.0; PORTS];
         current[GAIN_PLATE_PORT] = gain.plate;
         current[GAIN_GRID_PORT] = gain.grid;
         current[FOLLOWER_PLATE_PORT] = follower.plate;
         current[FOLLOWER_GRID_PORT] = follower.grid;
-        current[ZENER_PORT] = pair_current;
+        current[ZENER_PORT] = point.current;
         DeviceEval {
             current,
-            pair_volts,
-            pair_volts_ds,
+            pair_volts: point.volts,
+            pair_volts_ds: point.volts_ds,
+            negative_part_volts: point.negative_part_volts,
+            negative_part_volts_ds: point.negative_part_volts_ds,
             gain_plate_dvpk: gain.plate_dvpk,
             gain_plate_dvgk: gain.plate_dvgk,
             gain_grid_dvgk: gain.grid_dvgk,
             follower_plate_dvpk: follower.plate_dvpk,
             follower_plate_dvgk: follower.plate_dvgk,
             follower_grid_dvgk: follower.grid_dvgk,
-            pair_current_ds,
+            pair_current_ds: point.current_ds,
         }
     }
 
@@ -154,6 +164,9 @@ impl StageDevices {
     fn set_coupling(&mut self, k: &[[f64; PORTS]; PORTS]) {
         for port in 0..PORTS {
             self.column_weight[port] = k.iter().map(|row| row[port].abs()).fold(0.0, f64::max);
+            for (out, k_row) in self.k_columns[port].iter_mut().zip(k) {
+                *out = k_row[port];
+            }
         }
         self.chord = None;
     }
@@ -223,12 +236,15 @@ impl StageDevices {
             *eval = e;
             let i = &e.current;
             let v = [x[0], x[1], x[2], x[3], e.pair_volts];
-            // Right-hand side p - v + K i.
+            // Right-hand side p - v + K i, column by column.
             let mut rhs = [0.0; PORTS];
             for row in 0..PORTS {
-                let kr = &k[row];
-                rhs[row] = p[row] - v[row]
-                    + (kr[0] * i[0] + kr[1] * i[1] + kr[2] * i[2] + kr[3] * i[3] + kr[4] * i[4]);
+                rhs[row] = p[row] - v[row];
+            }
+            for (column, current) in self.k_columns.iter().zip(i) {
+                for (out, m) in rhs.iter_mut().zip(column) {
+                    *out += m * current;
+                }
             }
             if report.iterations == 1 {
                 if let (Some((lu, then)), true) = (&self.chord, self.chord_drift > 0.0) {
@@ -243,7 +259,7 @@ impl StageDevices {
                             for (x, s) in x.iter_mut().zip(&step) {
                                 *x += s;
                             }
-                            e.carry_currents(&step, &mut eval.current);
+                            eval.carry(&step);
                             report.converged = true;
                             report.chord = true;
                             return report;
@@ -299,7 +315,7 @@ impl StageDevices {
                 small &= s.abs() <= self.tolerance[n];
             }
             if small {
-                e.carry_currents(&step, &mut eval.current);
+                eval.carry(&step);
                 report.converged = true;
                 return report;
             }
@@ -310,9 +326,11 @@ impl StageDevices {
 }
 
 impl DeviceEval {
-    /// Carry the port currents through a last (tiny) step of the unknowns, to first order.
+    /// Carry the port currents and the negative part's voltage through a last (tiny) step of the unknowns,
+    /// to first order.
     #[inline(always)]
-    fn carry_currents(&self, step: &[f64; PORTS], current: &mut [f64; PORTS]) {
+    fn carry(&mut self, step: &[f64; PORTS]) {
+        let current = &mut self.current;
         current[GAIN_PLATE_PORT] += self.gain_plate_dvpk * step[GAIN_PLATE_PORT]
             + self.gain_plate_dvgk * step[GAIN_GRID_PORT];
         current[GAIN_GRID_PORT] += self.gain_grid_dvgk * step[GAIN_GRID_PORT];
@@ -320,6 +338,7 @@ impl DeviceEval {
             + self.follower_plate_dvgk * step[FOLLOWER_GRID_PORT];
         current[FOLLOWER_GRID_PORT] += self.follower_grid_dvgk * step[FOLLOWER_GRID_PORT];
         current[ZENER_PORT] += self.pair_current_ds * step[ZENER_PORT];
+        self.negative_part_volts += self.negative_part_volts_ds * step[ZENER_PORT];
     }
 }
 
@@ -395,6 +414,7 @@ impl Stage {
                 // Step sizes below which Newton stops; the error left is about the square of these.
                 tolerance: [1e-3, 1e-4, 1e-3, 1e-4, 1e-3],
                 column_weight: [0.0; PORTS],
+                k_columns: [[0.0; PORTS]; PORTS],
                 chord: None,
                 chord_drift: CHORD_DRIFT,
             },
@@ -610,11 +630,8 @@ impl Stage {
         self.coupling_feed.incident(a[4]);
         self.level_network.incident(a[5]);
         let pair = &self.devices.pairs[self.devices.active_pair];
-        let (positive_part_volts, negative_part_volts) = pair.part_volts(
-            self.unknowns[ZENER_PORT],
-            currents[ZENER_PORT],
-            nodes[CLAMP_NODE - 1],
-        );
+        let (positive_part_volts, negative_part_volts) =
+            pair.split(nodes[CLAMP_NODE - 1], self.eval.negative_part_volts);
         self.probe = StageProbe {
             clamp_volts: nodes[CLAMP_NODE - 1],
             wiper_volts: self.level_network.second.voltage(),

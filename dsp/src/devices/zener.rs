@@ -166,23 +166,91 @@ impl JunctionTable {
         }
     }
 
-    /// The pair's two junctions in one table: Vn(s) - Vp(-s) for the negative-clamp part `negative` carrying
-    /// I = CURRENT_SCALE sinh s and the positive-clamp part `positive` carrying -I (either may be absent). The
-    /// grid is symmetric about s = 0, so the mirrored table interpolates exactly as the separate lookups did.
-    fn combined(
-        negative: Option<&JunctionTable>,
-        positive: Option<&JunctionTable>,
-    ) -> JunctionTable {
+    /// Junction voltage and dV/ds at s (cubic Hermite inside, linear outside the table).
+    #[inline]
+    pub fn eval(&self, s: f64) -> (f64, f64) {
+        let ([v], [d]) = hermite(&self.points, self.start, self.step, self.inv_step, s);
+        (v, d)
+    }
+}
+
+/// Cubic Hermite interpolation of K tabulated functions sharing one uniform grid in s, from each point's
+/// values (first K entries) and s-derivatives (last K entries); linear continuation outside the grid.
+/// Returns (values, derivatives).
+#[inline(always)]
+fn hermite<const K: usize, const W: usize>(
+    points: &[[f64; W]],
+    start: f64,
+    step: f64,
+    inv_step: f64,
+    s: f64,
+) -> ([f64; K], [f64; K]) {
+    let mut values = [0.0; K];
+    let mut slopes = [0.0; K];
+    let pos = (s - start) * inv_step;
+    let last = points.len() - 1;
+    if pos.is_nan() || pos <= 0.0 {
+        let ds = if s.is_nan() { 0.0 } else { s - start };
+        for k in 0..K {
+            let (v, d) = (points[0][k], points[0][K + k]);
+            values[k] = v + ds * d;
+            slopes[k] = d;
+        }
+        return (values, slopes);
+    }
+    if pos >= last as f64 {
+        let ds = s - (start + last as f64 * step);
+        for k in 0..K {
+            let (v, d) = (points[last][k], points[last][K + k]);
+            values[k] = v + ds * d;
+            slopes[k] = d;
+        }
+        return (values, slopes);
+    }
+    // floor(pos) by the round-to-nearest shift trick on pos - 1/2 (pos is in (0, last) here).
+    const SHIFT: f64 = 6_755_399_441_055_744.0;
+    let idx = (((pos - 0.5) + SHIFT).to_bits() as u32 as usize).min(last - 1);
+    let t = pos - idx as f64;
+    let (p0, p1) = (&points[idx], &points[idx + 1]);
+    for k in 0..K {
+        let (y0, y1) = (p0[k], p1[k]);
+        let (m0, m1) = (p0[K + k] * step, p1[K + k] * step);
+        let dy = y1 - y0;
+        // Hermite form: y0 + t (m0 + t (c2 + t c3)).
+        let c2 = 3.0 * dy - 2.0 * m0 - m1;
+        let c3 = m0 + m1 - 2.0 * dy;
+        values[k] = y0 + t * (m0 + t * (c2 + t * c3));
+        slopes[k] = (m0 + t * (2.0 * c2 + t * 3.0 * c3)) * inv_step;
+    }
+    (values, slopes)
+}
+
+/// Both junctions of a pair on one grid in s: the pair's junction voltage Vn(s) - Vp(-s) and the negative-clamp
+/// part's own Vn(s), with their s-derivatives, so one lookup gives the pair and the split between its parts.
+#[derive(Clone, Debug)]
+struct PairTable {
+    start: f64,
+    step: f64,
+    inv_step: f64,
+    /// (pair volts, negative-part volts, their dV/ds) at each point.
+    points: Vec<[f64; 4]>,
+}
+
+impl PairTable {
+    /// The pair's table for the negative-clamp part `negative` carrying I = CURRENT_SCALE sinh s and the
+    /// positive-clamp part `positive` carrying -I (either may be absent). The grid is symmetric about s = 0,
+    /// so the mirrored positive-part table interpolates exactly as a separate lookup at -s would.
+    fn new(negative: Option<&JunctionTable>, positive: Option<&JunctionTable>) -> PairTable {
         let last = TABLE_POINTS - 1;
         let step = 2.0 * TABLE_HALF_SPAN / last as f64;
         let points = (0..TABLE_POINTS)
             .map(|i| {
                 let [vn, dn] = negative.map_or([0.0; 2], |t| t.points[i]);
                 let [vp, dp] = positive.map_or([0.0; 2], |t| t.points[last - i]);
-                [vn - vp, dn + dp]
+                [vn - vp, vn, dn + dp, dn]
             })
             .collect();
-        JunctionTable {
+        PairTable {
             start: -TABLE_HALF_SPAN,
             step,
             inv_step: 1.0 / step,
@@ -190,35 +258,10 @@ impl JunctionTable {
         }
     }
 
-    /// Junction voltage and dV/ds at s (cubic Hermite inside, linear outside the table).
+    /// ([pair volts, negative-part volts], their s-derivatives) at s.
     #[inline]
-    pub fn eval(&self, s: f64) -> (f64, f64) {
-        let pos = (s - self.start) * self.inv_step;
-        let last = self.points.len() - 1;
-        if pos.is_nan() || pos <= 0.0 {
-            let [v, d] = self.points[0];
-            let ds = if s.is_nan() { 0.0 } else { s - self.start };
-            return (v + ds * d, d);
-        }
-        if pos >= last as f64 {
-            let end = self.start + last as f64 * self.step;
-            let [v, d] = self.points[last];
-            return (v + (s - end) * d, d);
-        }
-        // floor(pos) by the round-to-nearest shift trick on pos - 1/2 (pos is in (0, last) here).
-        const SHIFT: f64 = 6_755_399_441_055_744.0;
-        let idx = (((pos - 0.5) + SHIFT).to_bits() as u32 as usize).min(last - 1);
-        let t = pos - idx as f64;
-        let [y0, d0] = self.points[idx];
-        let [y1, d1] = self.points[idx + 1];
-        let (m0, m1) = (d0 * self.step, d1 * self.step);
-        let dy = y1 - y0;
-        // Hermite form: y0 + t (m0 + t (c2 + t c3)).
-        let c2 = 3.0 * dy - 2.0 * m0 - m1;
-        let c3 = m0 + m1 - 2.0 * dy;
-        let value = y0 + t * (m0 + t * (c2 + t * c3));
-        let deriv = (m0 + t * (2.0 * c2 + t * 3.0 * c3)) * self.inv_step;
-        (value, deriv)
+    fn eval(&self, s: f64) -> ([f64; 2], [f64; 2]) {
+        hermite(&self.points, self.start, self.step, self.inv_step, s)
     }
 }
 
@@ -253,6 +296,8 @@ pub struct PairPoint {
     pub positive_part_volts: f64,
     /// Voltage across the negative-clamp part, its anode (middle) to cathode (ground side) (V).
     pub negative_part_volts: f64,
+    /// d(negative_part_volts)/ds (V); filled by `port`.
+    pub negative_part_volts_ds: f64,
 }
 
 /// Antiseries pair, clamp node -> positive part (cathode to the node) -> negative part (cathode to ground).
@@ -262,7 +307,7 @@ pub struct ZenerPair {
     pub positive: Option<TabulatedZener>,
     pub negative: Option<TabulatedZener>,
     /// Both junctions in one table (None when the position is open), and the two series resistances summed.
-    combined: Option<JunctionTable>,
+    combined: Option<PairTable>,
     series_resistance: f64,
 }
 
@@ -273,7 +318,7 @@ impl ZenerPair {
         let combined = if positive.is_none() && negative.is_none() {
             None
         } else {
-            Some(JunctionTable::combined(
+            Some(PairTable::new(
                 negative.as_ref().map(|z| &z.table),
                 positive.as_ref().map(|z| &z.table),
             ))
@@ -288,40 +333,36 @@ impl ZenerPair {
         }
     }
 
-    /// Pair voltage and current with their s-derivatives at s, from the combined table (one lookup); the
-    /// per-part voltages are left at zero (see `part_volts` and `at`).
+    /// Pair voltage and current with their s-derivatives at s, and the negative-clamp part's voltage, from
+    /// the combined table (one lookup); the positive part's voltage is left at zero (see `split`).
     #[inline]
     pub fn port(&self, s: f64) -> PairPoint {
         let (sinh, cosh) = crate::fastmath::sinh_cosh(s);
         let current = CURRENT_SCALE * sinh;
         let current_ds = CURRENT_SCALE * cosh;
-        let (vj, dvj) = match &self.combined {
+        let ([vj, vn], [dvj, dvn]) = match &self.combined {
             Some(t) => t.eval(s),
-            None => (0.0, 0.0),
+            None => ([0.0; 2], [0.0; 2]),
         };
+        let rn = self.negative.as_ref().map_or(0.0, |z| z.part.rs);
         PairPoint {
             volts: vj + self.series_resistance * current,
             volts_ds: dvj + self.series_resistance * current_ds,
             current,
             current_ds,
-            ..Default::default()
+            positive_part_volts: 0.0,
+            negative_part_volts: vn + rn * current,
+            negative_part_volts_ds: dvn + rn * current_ds,
         }
     }
 
-    /// (positive-part, negative-part) voltages as in `PairPoint` for a pair carrying `current` at s whose
-    /// total voltage is `total_volts`: one table lookup (the other part takes the rest of the total).
+    /// (positive-part, negative-part) voltages as in `PairPoint`, given the pair's total voltage and the
+    /// negative part's voltage from `port`: the positive part takes the rest of the total.
     #[inline]
-    pub fn part_volts(&self, s: f64, current: f64, total_volts: f64) -> (f64, f64) {
+    pub fn split(&self, total_volts: f64, negative_part_volts: f64) -> (f64, f64) {
         match (&self.positive, &self.negative) {
-            (_, Some(neg)) => {
-                let negative = neg.table.eval(s).0 + neg.part.rs * current;
-                let positive = if self.positive.is_some() {
-                    total_volts - negative
-                } else {
-                    0.0
-                };
-                (positive, negative)
-            }
+            (Some(_), Some(_)) => (total_volts - negative_part_volts, negative_part_volts),
+            (None, Some(_)) => (0.0, negative_part_volts),
             (Some(_), None) => (total_volts, 0.0),
             (None, None) => (0.0, 0.0),
         }

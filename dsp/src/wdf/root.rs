@@ -26,6 +26,12 @@ pub struct RTypeRoot<const N: usize, const E: usize, const P: usize> {
     pub port_offset: [f64; P],
     node_from_wave: [[f64; E]; N],
     node_from_current: [[f64; P]; N],
+    /// The same matrices stored by columns for the per-sample products (each column scales one input).
+    port_columns: [[f64; P]; E],
+    node_wave_columns: [[f64; N]; E],
+    node_current_columns: [[f64; N]; P],
+    /// Each edge's (+, -) node as (index, weight): weight 1 for a node, 0 (index 0) for ground.
+    edge_slots: [[(usize, f64); 2]; E],
 }
 
 impl<const N: usize, const E: usize, const P: usize> RTypeRoot<N, E, P> {
@@ -39,6 +45,19 @@ impl<const N: usize, const E: usize, const P: usize> RTypeRoot<N, E, P> {
             port_offset: [0.0; P],
             node_from_wave: [[0.0; E]; N],
             node_from_current: [[0.0; P]; N],
+            port_columns: [[0.0; P]; E],
+            node_wave_columns: [[0.0; N]; E],
+            node_current_columns: [[0.0; N]; P],
+            edge_slots: edges.map(|(plus, minus)| {
+                let slot = |node: usize| {
+                    if node > 0 {
+                        (node - 1, 1.0)
+                    } else {
+                        (0, 0.0)
+                    }
+                };
+                [slot(plus), slot(minus)]
+            }),
         }
     }
 
@@ -108,14 +127,29 @@ impl<const N: usize, const E: usize, const P: usize> RTypeRoot<N, E, P> {
             self.port_from_wave[p] = wave;
             self.port_from_current[p] = current;
         }
+        for e in 0..E {
+            for p in 0..P {
+                self.port_columns[e][p] = self.port_from_wave[p][e];
+            }
+            for n in 0..N {
+                self.node_wave_columns[e][n] = self.node_from_wave[n][e];
+            }
+        }
+        for p in 0..P {
+            for n in 0..N {
+                self.node_current_columns[p][n] = self.node_from_current[n][p];
+            }
+        }
     }
 
     /// Open-circuit port voltages for the reflected waves `b` of the edges (the K-method's p vector).
     #[inline]
     pub fn open_port_voltages(&self, b: &[f64; E]) -> [f64; P] {
         let mut p = self.port_offset;
-        for (row, out) in self.port_from_wave.iter().zip(p.iter_mut()) {
-            *out += row.iter().zip(b).map(|(m, w)| m * w).sum::<f64>();
+        for (column, wave) in self.port_columns.iter().zip(b) {
+            for (out, m) in p.iter_mut().zip(column) {
+                *out += m * wave;
+            }
         }
         p
     }
@@ -124,18 +158,15 @@ impl<const N: usize, const E: usize, const P: usize> RTypeRoot<N, E, P> {
     #[inline]
     pub fn node_voltages(&self, b: &[f64; E], currents: &[f64; P]) -> [f64; N] {
         let mut x = [0.0; N];
-        for (out, (waves, from_current)) in x
-            .iter_mut()
-            .zip(self.node_from_wave.iter().zip(&self.node_from_current))
-        {
-            let mut sum = 0.0;
-            for (m, w) in waves.iter().zip(b) {
-                sum += m * w;
+        for (column, wave) in self.node_wave_columns.iter().zip(b) {
+            for (out, m) in x.iter_mut().zip(column) {
+                *out += m * wave;
             }
-            for (m, i) in from_current.iter().zip(currents) {
-                sum += m * i;
+        }
+        for (column, current) in self.node_current_columns.iter().zip(currents) {
+            for (out, m) in x.iter_mut().zip(column) {
+                *out += m * current;
             }
-            *out = sum;
         }
         x
     }
@@ -144,11 +175,8 @@ impl<const N: usize, const E: usize, const P: usize> RTypeRoot<N, E, P> {
     #[inline]
     pub fn incident_waves(&self, b: &[f64; E], nodes: &[f64; N]) -> [f64; E] {
         let mut a = [0.0; E];
-        for e in 0..E {
-            let (plus, minus) = self.edges[e];
-            let vp = if plus > 0 { nodes[plus - 1] } else { 0.0 };
-            let vm = if minus > 0 { nodes[minus - 1] } else { 0.0 };
-            a[e] = 2.0 * (vp - vm) - b[e];
+        for ((out, [(plus, wp), (minus, wm)]), wave) in a.iter_mut().zip(&self.edge_slots).zip(b) {
+            *out = 2.0 * (wp * nodes[*plus] - wm * nodes[*minus]) - wave;
         }
         a
     }
