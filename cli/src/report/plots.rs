@@ -29,6 +29,45 @@ fn err<E: std::fmt::Display>(e: E) -> String {
 }
 
 /// A symmetric volts range that holds every value, rounded up to a tidy number.
+type LightChart<'a, 'b> = ChartContext<
+    'a,
+    SVGBackend<'b>,
+    Cartesian2d<plotters::coord::types::RangedCoordf64, plotters::coord::types::RangedCoordf64>,
+>;
+
+/// White chart with a caption and room for axis labels (the overlay and harmonic plots share it).
+fn light_chart<'a, 'b>(
+    root: &'a DrawingArea<SVGBackend<'b>, plotters::coord::Shift>,
+    title: &str,
+    x: std::ops::Range<f64>,
+    y: std::ops::Range<f64>,
+) -> Result<LightChart<'a, 'b>, String> {
+    root.fill(&WHITE).map_err(err)?;
+    ChartBuilder::on(root)
+        .caption(title, ("sans-serif", 18))
+        .margin(12)
+        .x_label_area_size(38)
+        .y_label_area_size(56)
+        .build_cartesian_2d(x, y)
+        .map_err(err)
+}
+
+/// Legend box in the upper right corner, for the series drawn with labels.
+fn draw_legend<'a, 'b: 'a>(chart: &mut LightChart<'a, 'b>) -> Result<(), String> {
+    chart
+        .configure_series_labels()
+        .position(SeriesLabelPosition::UpperRight)
+        .background_style(WHITE.mix(0.85))
+        .border_style(BLACK)
+        .draw()
+        .map_err(err)
+}
+
+/// Legend sample: a short line in the series colour.
+fn swatch(c: RGBColor, width: u32) -> impl Fn((i32, i32)) -> PathElement<(i32, i32)> {
+    move |(x, y)| PathElement::new(vec![(x, y), (x + 18, y)], c.stroke_width(width))
+}
+
 fn volts_range(values: impl Iterator<Item = f64>) -> f64 {
     let peak = values
         .filter(|v| v.is_finite())
@@ -67,14 +106,7 @@ pub fn overlay(title: &str, rate: f64, traces: &[Trace]) -> Result<String, Strin
     );
     {
         let root = SVGBackend::with_string(&mut svg, (900, 380)).into_drawing_area();
-        root.fill(&WHITE).map_err(err)?;
-        let mut chart = ChartBuilder::on(&root)
-            .caption(title, ("sans-serif", 18))
-            .margin(12)
-            .x_label_area_size(38)
-            .y_label_area_size(56)
-            .build_cartesian_2d(0f64..ms, -range..range)
-            .map_err(err)?;
+        let mut chart = light_chart(&root, title, 0f64..ms, -range..range)?;
         chart
             .configure_mesh()
             .x_desc("time in the passage (ms)")
@@ -96,17 +128,9 @@ pub fn overlay(title: &str, rate: f64, traces: &[Trace]) -> Result<String, Strin
                 ))
                 .map_err(err)?
                 .label(t.name)
-                .legend(move |(x, y)| {
-                    PathElement::new(vec![(x, y), (x + 18, y)], c.stroke_width(3))
-                });
+                .legend(swatch(c, 3));
         }
-        chart
-            .configure_series_labels()
-            .position(SeriesLabelPosition::UpperRight)
-            .background_style(WHITE.mix(0.85))
-            .border_style(BLACK)
-            .draw()
-            .map_err(err)?;
+        draw_legend(&mut chart)?;
         root.present().map_err(err)?;
     }
     Ok(svg)
@@ -273,14 +297,7 @@ pub fn harmonics(title: &str, series: &[(&str, usize, &[f64])]) -> Result<String
     let floor = -100.0;
     {
         let root = SVGBackend::with_string(&mut svg, (900, 340)).into_drawing_area();
-        root.fill(&WHITE).map_err(err)?;
-        let mut chart = ChartBuilder::on(&root)
-            .caption(title, ("sans-serif", 18))
-            .margin(12)
-            .x_label_area_size(38)
-            .y_label_area_size(56)
-            .build_cartesian_2d(0.5f64..highest as f64 + 0.5, floor..5.0)
-            .map_err(err)?;
+        let mut chart = light_chart(&root, title, 0.5f64..highest as f64 + 0.5, floor..5.0)?;
         chart
             .configure_mesh()
             .x_labels(highest)
@@ -302,17 +319,9 @@ pub fn harmonics(title: &str, series: &[(&str, usize, &[f64])]) -> Result<String
                 }))
                 .map_err(err)?
                 .label(*name)
-                .legend(move |(x, y)| {
-                    PathElement::new(vec![(x, y), (x + 18, y)], c.stroke_width(4))
-                });
+                .legend(swatch(c, 4));
         }
-        chart
-            .configure_series_labels()
-            .position(SeriesLabelPosition::UpperRight)
-            .background_style(WHITE.mix(0.85))
-            .border_style(BLACK)
-            .draw()
-            .map_err(err)?;
+        draw_legend(&mut chart)?;
         root.present().map_err(err)?;
     }
     Ok(svg)
