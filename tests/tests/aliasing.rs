@@ -48,7 +48,7 @@ fn measure(freq: usize, quality: Quality) -> Measured {
     let mut engine =
         Engine::new(&Circuit::reference(), RATE, quality, settings(1)).expect("reference circuit");
     let skip = (SETTLE_SECONDS * RATE) as usize;
-    // The tone runs on past the block: the linear-phase decimator looks 24 samples ahead, so a block that ended
+    // The tone runs on past the block: the linear-phase filters look ahead by about half their latency (tens of samples), so a block that ended
     // with the input would carry the filter's pre-echo of the cut.
     let input = sine(freq as f64, RATE, AMPLITUDE, skip + BLOCK + 2_400);
     let out = engine.render(&input, Probe::Clamp);
