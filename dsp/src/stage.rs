@@ -87,11 +87,25 @@ struct StageDevices {
     column_weight: [f64; PORTS],
     /// K by columns: `k_columns[port]` is the port voltages per unit current of `port`.
     k_columns: [[f64; PORTS]; PORTS],
-    /// LU factors of the last Jacobian and the device slopes it was built from.
-    chord: Option<(SmallLu<PORTS>, DeviceEval)>,
+    /// LU factors of the last Jacobian, for chord steps.
+    chord: Option<Chord>,
     /// `CHORD_DRIFT`, or 0 to factor afresh every sample (tests compare the two).
     chord_drift: f64,
 }
+
+// Device slopes, the entries of the Jacobian that change from sample to sample (indices into `slopes`).
+/// d(gain plate current)/dVpk, d(gain plate current)/dVgk, d(gain grid current)/dVgk.
+const GAIN_PLATE_DVPK: usize = 0;
+const GAIN_PLATE_DVGK: usize = 1;
+const GAIN_GRID_DVGK: usize = 2;
+/// The same for the follower.
+const FOLLOWER_PLATE_DVPK: usize = 3;
+const FOLLOWER_PLATE_DVGK: usize = 4;
+const FOLLOWER_GRID_DVGK: usize = 5;
+/// dV/ds and dI/ds of the pair.
+const PAIR_VOLTS_DS: usize = 6;
+const PAIR_CURRENT_DS: usize = 7;
+const SLOPES: usize = 8;
 
 /// Device currents and derivatives at one Newton point, in the stage's fixed sparsity: each valve's plate
 /// current follows its Vpk and Vgk, its grid current its Vgk, and the pair's current and voltage its s.
@@ -99,27 +113,40 @@ struct StageDevices {
 struct DeviceEval {
     /// Port currents, indexed by port.
     current: [f64; PORTS],
-    /// Pair voltage and dV/ds (the valve ports' voltages are their unknowns themselves).
+    /// Pair voltage (the valve ports' voltages are their unknowns themselves).
     pair_volts: f64,
-    pair_volts_ds: f64,
     /// The negative-clamp part's share of the pair voltage and its dV/ds.
     negative_part_volts: f64,
     negative_part_volts_ds: f64,
-    /// d(gain plate current)/d(Vpk, Vgk), d(gain grid current)/dVgk.
-    gain_plate_dvpk: f64,
-    gain_plate_dvgk: f64,
-    gain_grid_dvgk: f64,
-    /// The same for the follower.
-    follower_plate_dvpk: f64,
-    follower_plate_dvgk: f64,
-    follower_grid_dvgk: f64,
-    /// dI/ds of the pair.
-    pair_current_ds: f64,
+    /// The slopes, indexed by GAIN_PLATE_DVPK ... PAIR_CURRENT_DS.
+    slopes: [f64; SLOPES],
+}
+
+/// LU factors of one Newton Jacobian kept for chord steps, with the device slopes they were built from and how
+/// far each slope may move before the factors no longer serve.
+#[derive(Clone, Copy, Debug)]
+struct Chord {
+    lu: SmallLu<PORTS>,
+    slopes: [f64; SLOPES],
+    allowance: [f64; SLOPES],
+}
+
+impl Chord {
+    /// Whether every slope in `now` is within its allowance of the factored ones.
+    #[inline(always)]
+    fn serves(&self, now: &[f64; SLOPES]) -> bool {
+        let mut close = true;
+        for ((now, then), allowance) in now.iter().zip(&self.slopes).zip(&self.allowance) {
+            // Written so that a NaN fails the test.
+            close &= (now - then).abs() <= *allowance;
+        }
+        close
+    }
 }
 
 impl StageDevices {
     #[inline(always)]
-    fn evaluate(&self, x: &[f64; PORTS]) -> DeviceEval {
+    fn evaluate(&self, x: &[f64; PORTS], out: &mut DeviceEval) {
         let gain = self
             .gain_valve
             .currents(x[GAIN_PLATE_PORT], x[GAIN_GRID_PORT]);
@@ -137,30 +164,71 @@ impl StageDevices {
         } else {
             pair.port(x[ZENER_PORT])
         };
-        let mut current = [0.0; PORTS];
-        current[GAIN_PLATE_PORT] = gain.plate;
-        current[GAIN_GRID_PORT] = gain.grid;
-        current[FOLLOWER_PLATE_PORT] = follower.plate;
-        current[FOLLOWER_GRID_PORT] = follower.grid;
-        current[ZENER_PORT] = point.current;
-        DeviceEval {
-            current,
-            pair_volts: point.volts,
-            pair_volts_ds: point.volts_ds,
-            negative_part_volts: point.negative_part_volts,
-            negative_part_volts_ds: point.negative_part_volts_ds,
-            gain_plate_dvpk: gain.plate_dvpk,
-            gain_plate_dvgk: gain.plate_dvgk,
-            gain_grid_dvgk: gain.grid_dvgk,
-            follower_plate_dvpk: follower.plate_dvpk,
-            follower_plate_dvgk: follower.plate_dvgk,
-            follower_grid_dvgk: follower.grid_dvgk,
-            pair_current_ds: point.current_ds,
-        }
+        out.current = [
+            gain.plate,
+            gain.grid,
+            follower.plate,
+            follower.grid,
+            point.current,
+        ];
+        out.pair_volts = point.volts;
+        out.negative_part_volts = point.negative_part_volts;
+        out.negative_part_volts_ds = point.negative_part_volts_ds;
+        out.slopes = [
+            gain.plate_dvpk,
+            gain.plate_dvgk,
+            gain.grid_dvgk,
+            follower.plate_dvpk,
+            follower.plate_dvgk,
+            follower.grid_dvgk,
+            point.volts_ds,
+            point.current_ds,
+        ];
     }
 
-    /// Largest |K| entry in each column: how strongly each unknown's device slopes enter the Jacobian (ohms;
-    /// for the pair, per unit of its current slope). Call after every change of K.
+    /// Newton's right-hand side p - v(x) + K i(x) at the point evaluated in `e`.
+    #[inline(always)]
+    fn residual(&self, p: &[f64; PORTS], x: &[f64; PORTS], e: &DeviceEval) -> [f64; PORTS] {
+        let v = [x[0], x[1], x[2], x[3], e.pair_volts];
+        let mut rhs = [0.0; PORTS];
+        for ((out, p), v) in rhs.iter_mut().zip(p).zip(&v) {
+            *out = p - v;
+        }
+        for (column, current) in self.k_columns.iter().zip(&e.current) {
+            for (out, m) in rhs.iter_mut().zip(column) {
+                *out += m * current;
+            }
+        }
+        rhs
+    }
+
+    /// Newton's Jacobian dv/dx - K di/dx at the point evaluated in `e`, written out for the fixed sparsity.
+    #[inline(always)]
+    fn jacobian(&self, e: &DeviceEval) -> [[f64; PORTS]; PORTS] {
+        let k = &self.k_columns;
+        let g = &e.slopes;
+        let mut jacobian = [[0.0; PORTS]; PORTS];
+        for (row, out) in jacobian.iter_mut().enumerate() {
+            *out = [
+                -(k[GAIN_PLATE_PORT][row] * g[GAIN_PLATE_DVPK]),
+                -(k[GAIN_PLATE_PORT][row] * g[GAIN_PLATE_DVGK]
+                    + k[GAIN_GRID_PORT][row] * g[GAIN_GRID_DVGK]),
+                -(k[FOLLOWER_PLATE_PORT][row] * g[FOLLOWER_PLATE_DVPK]),
+                -(k[FOLLOWER_PLATE_PORT][row] * g[FOLLOWER_PLATE_DVGK]
+                    + k[FOLLOWER_GRID_PORT][row] * g[FOLLOWER_GRID_DVGK]),
+                -(k[ZENER_PORT][row] * g[PAIR_CURRENT_DS]),
+            ];
+        }
+        jacobian[0][0] += 1.0;
+        jacobian[1][1] += 1.0;
+        jacobian[2][2] += 1.0;
+        jacobian[3][3] += 1.0;
+        jacobian[4][4] += g[PAIR_VOLTS_DS];
+        jacobian
+    }
+
+    /// K by columns and the largest |K| entry in each column (how strongly each unknown's device slopes enter
+    /// the Jacobian: ohms; for the pair, per unit of its current slope). Call after every change of K.
     fn set_coupling(&mut self, k: &[[f64; PORTS]; PORTS]) {
         for port in 0..PORTS {
             self.column_weight[port] = k.iter().map(|row| row[port].abs()).fold(0.0, f64::max);
@@ -171,123 +239,95 @@ impl StageDevices {
         self.chord = None;
     }
 
-    /// Whether the Jacobian at `now` differs from the factored one at `then` by at most `CHORD_DRIFT` of each
-    /// column's size, so a step with the old factors is a good Newton step (a chord step).
-    #[inline(always)]
-    fn jacobian_close(&self, then: &DeviceEval, now: &DeviceEval) -> bool {
-        let w = &self.column_weight;
-        let columns = [
-            (
-                w[0] * (now.gain_plate_dvpk - then.gain_plate_dvpk).abs(),
-                1.0 + w[0] * then.gain_plate_dvpk.abs(),
-            ),
-            (
-                w[0] * (now.gain_plate_dvgk - then.gain_plate_dvgk).abs()
-                    + w[1] * (now.gain_grid_dvgk - then.gain_grid_dvgk).abs(),
-                1.0 + w[0] * then.gain_plate_dvgk.abs() + w[1] * then.gain_grid_dvgk.abs(),
-            ),
-            (
-                w[2] * (now.follower_plate_dvpk - then.follower_plate_dvpk).abs(),
-                1.0 + w[2] * then.follower_plate_dvpk.abs(),
-            ),
-            (
-                w[2] * (now.follower_plate_dvgk - then.follower_plate_dvgk).abs()
-                    + w[3] * (now.follower_grid_dvgk - then.follower_grid_dvgk).abs(),
-                1.0 + w[2] * then.follower_plate_dvgk.abs() + w[3] * then.follower_grid_dvgk.abs(),
-            ),
-            (
-                (now.pair_volts_ds - then.pair_volts_ds).abs()
-                    + w[4] * (now.pair_current_ds - then.pair_current_ds).abs(),
-                then.pair_volts_ds.abs() + w[4] * then.pair_current_ds.abs(),
-            ),
-        ];
-        let mut close = true;
-        for (change, size) in columns {
-            close &= change <= self.chord_drift * size;
+    /// Keep `lu`, the factors of the Jacobian at `e`, for chord steps. Each slope may move the Jacobian
+    /// column it enters by at most `chord_drift` of that column's size (1 plus the device terms for a valve
+    /// port, |dV/ds| plus the current term for the pair).
+    fn keep_factors(&mut self, lu: Option<SmallLu<PORTS>>, e: &DeviceEval) {
+        let Some(lu) = lu else {
+            self.chord = None;
+            return;
+        };
+        if self.chord_drift <= 0.0 {
+            self.chord = None;
+            return;
         }
-        close
+        let w = &self.column_weight;
+        let g = &e.slopes;
+        let drift = self.chord_drift;
+        let per = |weight: f64, size: f64| {
+            if weight > 0.0 {
+                drift * size / weight
+            } else {
+                f64::INFINITY
+            }
+        };
+        let gain_vgk = 1.0 + w[0] * g[GAIN_PLATE_DVGK].abs() + w[1] * g[GAIN_GRID_DVGK].abs();
+        let follower_vgk =
+            1.0 + w[2] * g[FOLLOWER_PLATE_DVGK].abs() + w[3] * g[FOLLOWER_GRID_DVGK].abs();
+        let pair = g[PAIR_VOLTS_DS].abs() + w[4] * g[PAIR_CURRENT_DS].abs();
+        let mut allowance = [0.0; SLOPES];
+        allowance[GAIN_PLATE_DVPK] = per(w[0], 1.0 + w[0] * g[GAIN_PLATE_DVPK].abs());
+        allowance[GAIN_PLATE_DVGK] = per(w[0], gain_vgk);
+        allowance[GAIN_GRID_DVGK] = per(w[1], gain_vgk);
+        allowance[FOLLOWER_PLATE_DVPK] = per(w[2], 1.0 + w[2] * g[FOLLOWER_PLATE_DVPK].abs());
+        allowance[FOLLOWER_PLATE_DVGK] = per(w[2], follower_vgk);
+        allowance[FOLLOWER_GRID_DVGK] = per(w[3], follower_vgk);
+        allowance[PAIR_VOLTS_DS] = per(1.0, pair);
+        allowance[PAIR_CURRENT_DS] = per(w[4], pair);
+        self.chord = Some(Chord {
+            lu,
+            slopes: e.slopes,
+            allowance,
+        });
     }
 
     /// Damped Newton on v(x) - p - K i(x) = 0 (K-method form) from the starting point in `x`, with each unknown's step
     /// limited as SPICE limits junction steps; stops when every step is within its tolerance. Leaves the
     /// solution in `x` and its port currents (first-order corrected through the last step) in `eval`.
-    /// The first step reuses the last LU factors while the device slopes stay within `CHORD_DRIFT` of
-    /// theirs (a chord step; accepted only when it is already within tolerance), so most samples need no
-    /// new factorisation.
+    /// The first step reuses the last LU factors while the device slopes stay close to theirs (a chord step;
+    /// accepted only when it is already within tolerance), so most samples need no new factorisation.
     #[inline]
     fn solve(
         &mut self,
-        k: &[[f64; PORTS]; PORTS],
         p: &[f64; PORTS],
         x: &mut [f64; PORTS],
         eval: &mut DeviceEval,
         max_iterations: u32,
     ) -> NewtonReport {
-        let mut report = NewtonReport::default();
+        let mut report = NewtonReport {
+            iterations: 1,
+            ..Default::default()
+        };
+        self.evaluate(x, eval);
+        let mut rhs = self.residual(p, x, eval);
+        if let Some(chord) = &self.chord {
+            if chord.serves(&eval.slopes) {
+                let step = chord.lu.solve(&rhs);
+                let mut small = true;
+                for (s, tolerance) in step.iter().zip(&self.tolerance) {
+                    // Written so that a NaN fails the test.
+                    small &= s.abs() <= *tolerance;
+                }
+                if small {
+                    for (x, s) in x.iter_mut().zip(&step) {
+                        *x += s;
+                    }
+                    eval.carry(&step);
+                    report.converged = true;
+                    report.chord = true;
+                    return report;
+                }
+            }
+        }
         // Per-unknown step limits (a trust region): when a step that hit its limit is followed by a step the
         // other way, the limit halves, so a Newton 2-cycle (overshoot one way, then back) closes in like
         // bisection; otherwise it grows back toward the full limit.
         let mut limit = self.max_step;
         let mut last_step = [0.0f64; PORTS];
         let mut last_limited = [false; PORTS];
-        while report.iterations < max_iterations {
-            report.iterations += 1;
-            let e = self.evaluate(x);
-            *eval = e;
-            let i = &e.current;
-            let v = [x[0], x[1], x[2], x[3], e.pair_volts];
-            // Right-hand side p - v + K i, column by column.
-            let mut rhs = [0.0; PORTS];
-            for row in 0..PORTS {
-                rhs[row] = p[row] - v[row];
-            }
-            for (column, current) in self.k_columns.iter().zip(i) {
-                for (out, m) in rhs.iter_mut().zip(column) {
-                    *out += m * current;
-                }
-            }
-            if report.iterations == 1 {
-                if let (Some((lu, then)), true) = (&self.chord, self.chord_drift > 0.0) {
-                    if self.jacobian_close(then, &e) {
-                        let step = lu.solve(&rhs);
-                        let mut small = true;
-                        for (s, tolerance) in step.iter().zip(&self.tolerance) {
-                            // Written so that a NaN fails the test.
-                            small &= s.abs() <= *tolerance;
-                        }
-                        if small {
-                            for (x, s) in x.iter_mut().zip(&step) {
-                                *x += s;
-                            }
-                            eval.carry(&step);
-                            report.converged = true;
-                            report.chord = true;
-                            return report;
-                        }
-                    }
-                }
-            }
-            // Jacobian dv/dx - K di/dx, written out for the fixed sparsity.
-            let mut jacobian = [[0.0; PORTS]; PORTS];
-            for row in 0..PORTS {
-                let kr = &k[row];
-                jacobian[row] = [
-                    -(kr[GAIN_PLATE_PORT] * e.gain_plate_dvpk),
-                    -(kr[GAIN_PLATE_PORT] * e.gain_plate_dvgk
-                        + kr[GAIN_GRID_PORT] * e.gain_grid_dvgk),
-                    -(kr[FOLLOWER_PLATE_PORT] * e.follower_plate_dvpk),
-                    -(kr[FOLLOWER_PLATE_PORT] * e.follower_plate_dvgk
-                        + kr[FOLLOWER_GRID_PORT] * e.follower_grid_dvgk),
-                    -(kr[ZENER_PORT] * e.pair_current_ds),
-                ];
-            }
-            jacobian[0][0] += 1.0;
-            jacobian[1][1] += 1.0;
-            jacobian[2][2] += 1.0;
-            jacobian[3][3] += 1.0;
-            jacobian[4][4] += e.pair_volts_ds;
-            let (mut step, factors) = solver::solve_small(&jacobian, &rhs);
-            self.chord = factors.map(|lu| (lu, e));
+        loop {
+            let (mut step, factors) = solver::solve_small(&self.jacobian(eval), &rhs);
+            self.keep_factors(factors, eval);
             let mut small = true;
             for n in 0..PORTS {
                 // Limit by comparisons (f64::clamp also checks its bounds); NaN passes to the test below.
@@ -319,8 +359,14 @@ impl StageDevices {
                 report.converged = true;
                 return report;
             }
+            if report.iterations >= max_iterations {
+                break;
+            }
+            report.iterations += 1;
+            self.evaluate(x, eval);
+            rhs = self.residual(p, x, eval);
         }
-        *eval = self.evaluate(x);
+        self.evaluate(x, eval);
         report
     }
 }
@@ -330,14 +376,15 @@ impl DeviceEval {
     /// to first order.
     #[inline(always)]
     fn carry(&mut self, step: &[f64; PORTS]) {
+        let g = &self.slopes;
         let current = &mut self.current;
-        current[GAIN_PLATE_PORT] += self.gain_plate_dvpk * step[GAIN_PLATE_PORT]
-            + self.gain_plate_dvgk * step[GAIN_GRID_PORT];
-        current[GAIN_GRID_PORT] += self.gain_grid_dvgk * step[GAIN_GRID_PORT];
-        current[FOLLOWER_PLATE_PORT] += self.follower_plate_dvpk * step[FOLLOWER_PLATE_PORT]
-            + self.follower_plate_dvgk * step[FOLLOWER_GRID_PORT];
-        current[FOLLOWER_GRID_PORT] += self.follower_grid_dvgk * step[FOLLOWER_GRID_PORT];
-        current[ZENER_PORT] += self.pair_current_ds * step[ZENER_PORT];
+        current[GAIN_PLATE_PORT] +=
+            g[GAIN_PLATE_DVPK] * step[GAIN_PLATE_PORT] + g[GAIN_PLATE_DVGK] * step[GAIN_GRID_PORT];
+        current[GAIN_GRID_PORT] += g[GAIN_GRID_DVGK] * step[GAIN_GRID_PORT];
+        current[FOLLOWER_PLATE_PORT] += g[FOLLOWER_PLATE_DVPK] * step[FOLLOWER_PLATE_PORT]
+            + g[FOLLOWER_PLATE_DVGK] * step[FOLLOWER_GRID_PORT];
+        current[FOLLOWER_GRID_PORT] += g[FOLLOWER_GRID_DVGK] * step[FOLLOWER_GRID_PORT];
+        current[ZENER_PORT] += g[PAIR_CURRENT_DS] * step[ZENER_PORT];
         self.negative_part_volts += self.negative_part_volts_ds * step[ZENER_PORT];
     }
 }
@@ -568,7 +615,8 @@ impl Stage {
             self.coupling_feed.reflected(),
             self.level_network.reflected(),
         ];
-        let p = self.root.open_port_voltages(&b);
+        let open_nodes = self.root.open_node_voltages(&b);
+        let p = self.root.open_port_voltages(&open_nodes);
         let last_solution = self.unknowns;
         // Predictor: quadratic extrapolation through the last three solutions (they move smoothly), kept
         // within a quarter of each unknown's Newton step limit of the last solution.
@@ -593,23 +641,15 @@ impl Stage {
         }
         self.older_unknowns = self.previous_unknowns;
         self.previous_unknowns = last_solution;
-        self.last_report = self.devices.solve(
-            &self.root.port_from_current,
-            &p,
-            &mut self.unknowns,
-            &mut self.eval,
-            max_iterations,
-        );
+        self.last_report =
+            self.devices
+                .solve(&p, &mut self.unknowns, &mut self.eval, max_iterations);
         if !self.last_report.converged {
             // Start again from the last solution without the prediction, with a larger budget.
             self.unknowns = last_solution;
-            let retry = self.devices.solve(
-                &self.root.port_from_current,
-                &p,
-                &mut self.unknowns,
-                &mut self.eval,
-                DC_ITERATIONS,
-            );
+            let retry = self
+                .devices
+                .solve(&p, &mut self.unknowns, &mut self.eval, DC_ITERATIONS);
             self.last_report = solver::NewtonReport {
                 iterations: self.last_report.iterations + retry.iterations,
                 converged: retry.converged,
@@ -618,10 +658,10 @@ impl Stage {
         }
         if !self.unknowns.iter().all(|v| v.is_finite()) {
             self.unknowns = last_solution;
-            self.eval = self.devices.evaluate(&last_solution);
+            self.devices.evaluate(&last_solution, &mut self.eval);
         }
         let currents = self.eval.current;
-        let nodes = self.root.node_voltages(&b, &currents);
+        let nodes = self.root.node_voltages(&open_nodes, &currents);
         let a = self.root.incident_waves(&b, &nodes);
         self.grid_feed.incident(a[0]);
         self.cathode_network.incident(a[1]);
@@ -678,6 +718,7 @@ mod tests {
         let mut with_chord = Stage::new(&circuit, rate, 0.5, 1);
         let mut fresh = Stage::new(&circuit, rate, 0.5, 1);
         fresh.devices.chord_drift = 0.0;
+        fresh.devices.chord = None;
         let mut chord_steps = 0usize;
         let mut worst = 0.0f64;
         let samples = 38_400;

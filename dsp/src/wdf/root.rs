@@ -27,16 +27,18 @@ pub struct RTypeRoot<const N: usize, const E: usize, const P: usize> {
     node_from_wave: [[f64; E]; N],
     node_from_current: [[f64; P]; N],
     /// The same matrices stored by columns for the per-sample products (each column scales one input).
-    port_columns: [[f64; P]; E],
     node_wave_columns: [[f64; N]; E],
     node_current_columns: [[f64; N]; P],
-    /// Each edge's (+, -) node as (index, weight): weight 1 for a node, 0 (index 0) for ground.
-    edge_slots: [[(usize, f64); 2]; E],
+    /// Each edge's (+, -) node as an index into `Extended` node voltages (ground at index N, always 0 V).
+    edge_slots: [[usize; 2]; E],
+    /// The same for each port's terminals (a fixed terminal reads ground there; its voltage is in `port_offset`).
+    port_slots: [[usize; 2]; P],
 }
 
 impl<const N: usize, const E: usize, const P: usize> RTypeRoot<N, E, P> {
     /// A root with `edges` given as (+ node, - node), 0 = ground, and the nonlinear `ports`.
     pub fn new(edges: [(usize, usize); E], ports: [(Terminal, Terminal); P]) -> Self {
+        const { assert!(N < EXTENDED, "RTypeRoot holds fewer than 8 nodes") };
         RTypeRoot {
             edges,
             ports,
@@ -45,17 +47,17 @@ impl<const N: usize, const E: usize, const P: usize> RTypeRoot<N, E, P> {
             port_offset: [0.0; P],
             node_from_wave: [[0.0; E]; N],
             node_from_current: [[0.0; P]; N],
-            port_columns: [[0.0; P]; E],
+            port_slots: ports.map(|(plus, minus)| {
+                let slot = |terminal: Terminal| match terminal {
+                    Terminal::Node(k) => k - 1,
+                    Terminal::Ground | Terminal::Fixed(_) => N,
+                };
+                [slot(plus), slot(minus)]
+            }),
             node_wave_columns: [[0.0; N]; E],
             node_current_columns: [[0.0; N]; P],
             edge_slots: edges.map(|(plus, minus)| {
-                let slot = |node: usize| {
-                    if node > 0 {
-                        (node - 1, 1.0)
-                    } else {
-                        (0, 0.0)
-                    }
-                };
+                let slot = |node: usize| if node > 0 { node - 1 } else { N };
                 [slot(plus), slot(minus)]
             }),
         }
@@ -128,9 +130,6 @@ impl<const N: usize, const E: usize, const P: usize> RTypeRoot<N, E, P> {
             self.port_from_current[p] = current;
         }
         for e in 0..E {
-            for p in 0..P {
-                self.port_columns[e][p] = self.port_from_wave[p][e];
-            }
             for n in 0..N {
                 self.node_wave_columns[e][n] = self.node_from_wave[n][e];
             }
@@ -142,27 +141,36 @@ impl<const N: usize, const E: usize, const P: usize> RTypeRoot<N, E, P> {
         }
     }
 
-    /// Open-circuit port voltages for the reflected waves `b` of the edges (the K-method's p vector).
+    /// Node voltages with no port current for the reflected waves `b` of the edges (edges whose wave is
+    /// exactly zero, as a resistor's always is, are skipped).
     #[inline]
-    pub fn open_port_voltages(&self, b: &[f64; E]) -> [f64; P] {
-        let mut p = self.port_offset;
-        for (column, wave) in self.port_columns.iter().zip(b) {
-            for (out, m) in p.iter_mut().zip(column) {
-                *out += m * wave;
+    pub fn open_node_voltages(&self, b: &[f64; E]) -> [f64; N] {
+        let mut x = [0.0; N];
+        for (column, wave) in self.node_wave_columns.iter().zip(b) {
+            if *wave != 0.0 {
+                for (out, m) in x.iter_mut().zip(column) {
+                    *out += m * wave;
+                }
             }
+        }
+        x
+    }
+
+    /// Open-circuit port voltages (the K-method's p vector) from the open node voltages.
+    #[inline]
+    pub fn open_port_voltages(&self, open_nodes: &[f64; N]) -> [f64; P] {
+        let nodes = extended(open_nodes);
+        let mut p = self.port_offset;
+        for (out, [plus, minus]) in p.iter_mut().zip(&self.port_slots) {
+            *out += nodes[plus % EXTENDED] - nodes[minus % EXTENDED];
         }
         p
     }
 
-    /// Node voltages once the port currents are known.
+    /// Node voltages once the port currents are known, from the open node voltages.
     #[inline]
-    pub fn node_voltages(&self, b: &[f64; E], currents: &[f64; P]) -> [f64; N] {
-        let mut x = [0.0; N];
-        for (column, wave) in self.node_wave_columns.iter().zip(b) {
-            for (out, m) in x.iter_mut().zip(column) {
-                *out += m * wave;
-            }
-        }
+    pub fn node_voltages(&self, open_nodes: &[f64; N], currents: &[f64; P]) -> [f64; N] {
+        let mut x = *open_nodes;
         for (column, current) in self.node_current_columns.iter().zip(currents) {
             for (out, m) in x.iter_mut().zip(column) {
                 *out += m * current;
@@ -174,12 +182,24 @@ impl<const N: usize, const E: usize, const P: usize> RTypeRoot<N, E, P> {
     /// Incident waves for the subtrees, a_e = 2 v_e - b_e.
     #[inline]
     pub fn incident_waves(&self, b: &[f64; E], nodes: &[f64; N]) -> [f64; E] {
+        let nodes = extended(nodes);
         let mut a = [0.0; E];
-        for ((out, [(plus, wp), (minus, wm)]), wave) in a.iter_mut().zip(&self.edge_slots).zip(b) {
-            *out = 2.0 * (wp * nodes[*plus] - wm * nodes[*minus]) - wave;
+        for ((out, [plus, minus]), wave) in a.iter_mut().zip(&self.edge_slots).zip(b) {
+            *out = 2.0 * (nodes[plus % EXTENDED] - nodes[minus % EXTENDED]) - wave;
         }
         a
     }
+}
+
+/// Length of the node voltages extended by ground (index N): indices taken modulo it need no bounds check.
+const EXTENDED: usize = 8;
+
+/// Node voltages followed by zeros, so ground (index N) reads 0 V.
+#[inline(always)]
+fn extended<const N: usize>(nodes: &[f64; N]) -> [f64; EXTENDED] {
+    let mut out = [0.0; EXTENDED];
+    out[..N].copy_from_slice(nodes);
+    out
 }
 
 /// Gauss-Jordan inverse with partial pivoting of a small nonsingular matrix.
@@ -267,7 +287,7 @@ mod tests {
         let mut root =
             RTypeRoot::<1, 2, 1>::new([(1, 0), (1, 0)], [(Terminal::Node(1), Terminal::Ground)]);
         root.update(&[1e3, 1e3]);
-        let p = root.open_port_voltages(&[10.0, 0.0]);
+        let p = root.open_port_voltages(&root.open_node_voltages(&[10.0, 0.0]));
         assert!((p[0] - 5.0).abs() < 1e-12);
         assert!((root.port_from_current[0][0] + 500.0).abs() < 1e-9);
     }
