@@ -137,14 +137,21 @@ impl Meters {
     pub fn clamp_peak_to_peak(&self) -> f64 {
         self.clamp_peak_positive - self.clamp_peak_negative
     }
+    #[inline(always)]
     fn record(&mut self, p: &StageProbe, report: NewtonReport) {
         self.samples += 1;
         let i = p.zener_current;
         if i.abs() > CLAMPED_CURRENT {
             self.clamped_samples += 1;
         }
-        self.clamp_peak_positive = larger(self.clamp_peak_positive, p.clamp_volts);
-        self.clamp_peak_negative = smaller(self.clamp_peak_negative, p.clamp_volts);
+        // The same as larger(peak +, v) and smaller(peak -, v): peak - <= peak + always holds (both start at 0),
+        // so a new sample can pass at most one of them, and a NaN passes neither.
+        let v = p.clamp_volts;
+        if v > self.clamp_peak_positive {
+            self.clamp_peak_positive = v;
+        } else if v < self.clamp_peak_negative {
+            self.clamp_peak_negative = v;
+        }
         self.zener_peak_current = larger(self.zener_peak_current, i.abs());
         self.zener_current_square_sum += i * i;
         let (wp, wn) = (p.positive_part_watts(), p.negative_part_watts());
@@ -203,6 +210,11 @@ impl Glide {
     }
     #[inline]
     fn next(&mut self) -> f64 {
+        if self.value == self.target {
+            // At rest: the step below would add zero and snap to the target, so return the target directly.
+            self.value = self.target;
+            return self.value;
+        }
         self.value += (self.target - self.value) * self.coeff;
         if (self.target - self.value).abs() < 1e-9 {
             self.value = self.target;
@@ -419,12 +431,13 @@ impl Engine {
         self.up
             .process(volts * attenuation, &mut self.high_in[..factor]);
         for k in 0..factor {
-            let p = *self.stage.process(self.high_in[k]);
-            let report = self.stage.last_report();
-            let values = Self::probe_values(&p, self.listen_units_per_volt);
-            self.meters.record(&p, report);
-            for (probe, v) in values.iter().enumerate() {
-                self.high_out[probe][k] = *v;
+            self.stage.process(self.high_in[k]);
+            // Read the stage's readouts in place (no copy of the whole probe).
+            let p = self.stage.probe();
+            self.meters.record(p, self.stage.last_report());
+            let values = Self::probe_values(p, self.listen_units_per_volt);
+            for (row, v) in self.high_out.iter_mut().zip(values) {
+                row[k] = v;
             }
         }
         let mut out = [0.0; 6];
@@ -473,5 +486,90 @@ impl Engine {
             }
         }
         out
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// The meters against their definitions, recomputed directly from every internal-rate stage probe of an
+    /// identical engine: counts, f64::max / f64::min of the readouts, sums of I^2 and of V I times the period.
+    #[test]
+    fn meters_match_their_definitions() {
+        let circuit = Circuit::reference();
+        let settings = Settings {
+            gain: 1.0,
+            level: 0.5,
+            position: 2,
+        };
+        let mut engine = Engine::new(&circuit, 48_000.0, Quality::X2, settings).unwrap();
+        engine.set_active_probes(&[Probe::Listen]);
+        let mut twin = engine.clone();
+        // A hard-driven, decaying 220 Hz tone (both clamp directions conduct) with one NaN sample.
+        let input: Vec<f32> = (0..4800)
+            .map(|n| {
+                let t = n as f64 / 48_000.0;
+                if n == 1000 {
+                    f32::NAN
+                } else {
+                    (0.9 * (-5.0 * t).exp() * (2.0 * std::f64::consts::PI * 220.0 * t).sin()) as f32
+                }
+            })
+            .collect();
+        for &x in &input {
+            engine.process_sample(x);
+        }
+
+        let factor = twin.quality.factor();
+        let period = 1.0 / (48_000.0 * factor as f64);
+        let attenuation = twin.gain_law.fraction(settings.gain);
+        let mut high = [0.0; 16];
+        let mut expected = Meters {
+            gain_plate_current_min: f64::INFINITY,
+            follower_plate_current_min: f64::INFINITY,
+            period,
+            ..Default::default()
+        };
+        let mut probes = 0usize;
+        for &x in &input {
+            let x = if x.is_finite() { x as f64 } else { 0.0 };
+            let volts =
+                (x * twin.input_volts_per_unit).clamp(-INPUT_LIMIT_VOLTS, INPUT_LIMIT_VOLTS);
+            twin.up.process(volts * attenuation, &mut high[..factor]);
+            for &h in &high[..factor] {
+                let p = *twin.stage.process(h);
+                let report = twin.stage.last_report();
+                let m = &mut expected;
+                let i = p.zener_current;
+                m.samples += 1;
+                m.clamped_samples += u64::from(i.abs() > CLAMPED_CURRENT);
+                m.clamp_peak_positive = m.clamp_peak_positive.max(p.clamp_volts);
+                m.clamp_peak_negative = m.clamp_peak_negative.min(p.clamp_volts);
+                m.zener_peak_current = m.zener_peak_current.max(i.abs());
+                m.zener_current_square_sum += i * i;
+                let wp = p.positive_part_volts * i;
+                let wn = p.negative_part_volts * i;
+                m.positive_part_peak_watts = m.positive_part_peak_watts.max(wp);
+                m.negative_part_peak_watts = m.negative_part_peak_watts.max(wn);
+                m.positive_part_energy += wp * period;
+                m.negative_part_energy += wn * period;
+                m.gain_grid_current_peak = m.gain_grid_current_peak.max(p.gain_grid_current);
+                m.follower_grid_current_peak =
+                    m.follower_grid_current_peak.max(p.follower_grid_current);
+                m.gain_plate_current_min = m.gain_plate_current_min.min(p.gain_plate_current);
+                m.follower_plate_current_min =
+                    m.follower_plate_current_min.min(p.follower_plate_current);
+                m.newton_iterations += u64::from(report.iterations);
+                m.newton_failures += u64::from(!report.converged);
+                m.chord_steps += u64::from(report.chord);
+                probes += 1;
+            }
+        }
+        assert_eq!(probes, input.len() * factor);
+        // Both directions clamped hard, so every peak and energy field is exercised.
+        assert!(expected.clamp_peak_positive > 10.0 && expected.clamp_peak_negative < -3.0);
+        assert!(expected.clamped_samples > 0 && expected.positive_part_energy > 0.0);
+        assert_eq!(*engine.meters(), expected);
     }
 }
