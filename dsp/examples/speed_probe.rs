@@ -1,17 +1,25 @@
-//! Quick speed probe: one channel of a decaying plucked tone at 48 kHz through X1 and X4 (argument: tenths of a second).
+//! Quick speed probe: one channel of a decaying plucked tone at 48 kHz through X1 and X4.
+//! Arguments: tenths of a second [gain pot, default 0.8] [switch position, default 1].
 use breakdown_dsp::{Circuit, Engine, Quality, Settings};
 use std::time::Instant;
 fn main() {
     let c = Circuit::reference();
+    let arg = |n: usize, default: f64| {
+        std::env::args()
+            .nth(n)
+            .and_then(|s| s.parse().ok())
+            .unwrap_or(default)
+    };
+    let (gain, position) = (arg(2, 0.8), arg(3, 1.0) as usize);
     for q in [Quality::X1, Quality::X4] {
         let mut e = Engine::new(
             &c,
             48000.0,
             q,
             Settings {
-                gain: 0.8,
+                gain,
                 level: 0.5,
-                position: 1,
+                position,
             },
         )
         .unwrap();

@@ -122,26 +122,13 @@ struct DeviceEval {
     slopes: [f64; SLOPES],
 }
 
-/// LU factors of one Newton Jacobian kept for chord steps, with the device slopes they were built from and how
-/// far each slope may move before the factors no longer serve.
+/// LU factors of one Newton Jacobian kept for chord steps, with the device slopes and the Jacobian's diagonal
+/// they were built from.
 #[derive(Clone, Copy, Debug)]
 struct Chord {
     lu: SmallLu<PORTS>,
     slopes: [f64; SLOPES],
-    allowance: [f64; SLOPES],
-}
-
-impl Chord {
-    /// Whether every slope in `now` is within its allowance of the factored ones.
-    #[inline(always)]
-    fn serves(&self, now: &[f64; SLOPES]) -> bool {
-        let mut close = true;
-        for ((now, then), allowance) in now.iter().zip(&self.slopes).zip(&self.allowance) {
-            // Written so that a NaN fails the test.
-            close &= (now - then).abs() <= *allowance;
-        }
-        close
-    }
+    diagonal: [f64; PORTS],
 }
 
 impl StageDevices {
@@ -239,46 +226,92 @@ impl StageDevices {
         self.chord = None;
     }
 
-    /// Keep `lu`, the factors of the Jacobian at `e`, for chord steps. Each slope may move the Jacobian
-    /// column it enters by at most `chord_drift` of that column's size (1 plus the device terms for a valve
-    /// port, |dV/ds| plus the current term for the pair).
+    /// Diagonal of the Jacobian for the device slopes `g` (see `jacobian`).
+    #[inline(always)]
+    fn diagonal(&self, g: &[f64; SLOPES]) -> [f64; PORTS] {
+        let k = &self.k_columns;
+        [
+            1.0 - k[GAIN_PLATE_PORT][GAIN_PLATE_PORT] * g[GAIN_PLATE_DVPK],
+            1.0 - k[GAIN_PLATE_PORT][GAIN_GRID_PORT] * g[GAIN_PLATE_DVGK]
+                - k[GAIN_GRID_PORT][GAIN_GRID_PORT] * g[GAIN_GRID_DVGK],
+            1.0 - k[FOLLOWER_PLATE_PORT][FOLLOWER_PLATE_PORT] * g[FOLLOWER_PLATE_DVPK],
+            1.0 - k[FOLLOWER_PLATE_PORT][FOLLOWER_GRID_PORT] * g[FOLLOWER_PLATE_DVGK]
+                - k[FOLLOWER_GRID_PORT][FOLLOWER_GRID_PORT] * g[FOLLOWER_GRID_DVGK],
+            g[PAIR_VOLTS_DS] - k[ZENER_PORT][ZENER_PORT] * g[PAIR_CURRENT_DS],
+        ]
+    }
+
+    /// Keep `lu`, the factors of the Jacobian at `e`, for chord steps.
     fn keep_factors(&mut self, lu: Option<SmallLu<PORTS>>, e: &DeviceEval) {
-        let Some(lu) = lu else {
-            self.chord = None;
-            return;
+        self.chord = match lu {
+            Some(lu) if self.chord_drift > 0.0 => Some(Chord {
+                lu,
+                slopes: e.slopes,
+                diagonal: self.diagonal(&e.slopes),
+            }),
+            _ => None,
         };
-        if self.chord_drift <= 0.0 {
-            self.chord = None;
-            return;
-        }
+    }
+
+    /// A chord step for the right-hand side `rhs` at slopes `now`, or None when the kept factors no longer
+    /// serve. The Jacobian now is taken as the kept one with each column j rescaled by c_j, the ratio of its
+    /// diagonal entries now and then (so a valve or the pair moving along its curve, which mostly scales its
+    /// column, keeps the factors); the step is then the kept factors' step divided by c. The factors serve
+    /// while what the rescaling leaves (each slope's change against c_j times its old value, weighted by its
+    /// largest K entry) stays within `chord_drift` of the column's size.
+    #[inline(always)]
+    fn chord_step(
+        &self,
+        chord: &Chord,
+        now: &[f64; SLOPES],
+        rhs: &[f64; PORTS],
+    ) -> Option<[f64; PORTS]> {
         let w = &self.column_weight;
-        let g = &e.slopes;
-        let drift = self.chord_drift;
-        let per = |weight: f64, size: f64| {
-            if weight > 0.0 {
-                drift * size / weight
-            } else {
-                f64::INFINITY
-            }
-        };
-        let gain_vgk = 1.0 + w[0] * g[GAIN_PLATE_DVGK].abs() + w[1] * g[GAIN_GRID_DVGK].abs();
-        let follower_vgk =
-            1.0 + w[2] * g[FOLLOWER_PLATE_DVGK].abs() + w[3] * g[FOLLOWER_GRID_DVGK].abs();
-        let pair = g[PAIR_VOLTS_DS].abs() + w[4] * g[PAIR_CURRENT_DS].abs();
-        let mut allowance = [0.0; SLOPES];
-        allowance[GAIN_PLATE_DVPK] = per(w[0], 1.0 + w[0] * g[GAIN_PLATE_DVPK].abs());
-        allowance[GAIN_PLATE_DVGK] = per(w[0], gain_vgk);
-        allowance[GAIN_GRID_DVGK] = per(w[1], gain_vgk);
-        allowance[FOLLOWER_PLATE_DVPK] = per(w[2], 1.0 + w[2] * g[FOLLOWER_PLATE_DVPK].abs());
-        allowance[FOLLOWER_PLATE_DVGK] = per(w[2], follower_vgk);
-        allowance[FOLLOWER_GRID_DVGK] = per(w[3], follower_vgk);
-        allowance[PAIR_VOLTS_DS] = per(1.0, pair);
-        allowance[PAIR_CURRENT_DS] = per(w[4], pair);
-        self.chord = Some(Chord {
-            lu,
-            slopes: e.slopes,
-            allowance,
-        });
+        let then = &chord.slopes;
+        let diagonal = self.diagonal(now);
+        let mut scale = [0.0; PORTS];
+        for ((c, d_now), d_then) in scale.iter_mut().zip(&diagonal).zip(&chord.diagonal) {
+            *c = d_now / d_then;
+        }
+        let left =
+            |slope: usize, weight: f64, c: f64| weight * (now[slope] - c * then[slope]).abs();
+        let size = |slope: usize, weight: f64| weight * now[slope].abs();
+        let columns = [
+            (
+                left(GAIN_PLATE_DVPK, w[0], scale[0]),
+                1.0 + size(GAIN_PLATE_DVPK, w[0]),
+            ),
+            (
+                left(GAIN_PLATE_DVGK, w[0], scale[1]) + left(GAIN_GRID_DVGK, w[1], scale[1]),
+                1.0 + size(GAIN_PLATE_DVGK, w[0]) + size(GAIN_GRID_DVGK, w[1]),
+            ),
+            (
+                left(FOLLOWER_PLATE_DVPK, w[2], scale[2]),
+                1.0 + size(FOLLOWER_PLATE_DVPK, w[2]),
+            ),
+            (
+                left(FOLLOWER_PLATE_DVGK, w[2], scale[3])
+                    + left(FOLLOWER_GRID_DVGK, w[3], scale[3]),
+                1.0 + size(FOLLOWER_PLATE_DVGK, w[2]) + size(FOLLOWER_GRID_DVGK, w[3]),
+            ),
+            (
+                left(PAIR_CURRENT_DS, w[4], scale[4]),
+                now[PAIR_VOLTS_DS].abs() + size(PAIR_CURRENT_DS, w[4]),
+            ),
+        ];
+        let mut serves = true;
+        for ((left, size), c) in columns.iter().zip(&scale) {
+            // Written so that a NaN fails the test; a column that changed sign is not a rescaling.
+            serves &= *left <= self.chord_drift * size && *c > 0.0;
+        }
+        if !serves {
+            return None;
+        }
+        let mut step = chord.lu.solve(rhs);
+        for (s, c) in step.iter_mut().zip(&scale) {
+            *s /= c;
+        }
+        Some(step)
     }
 
     /// Damped Newton on v(x) - p - K i(x) = 0 (K-method form) from the starting point in `x`, with each unknown's step
@@ -300,9 +333,12 @@ impl StageDevices {
         };
         self.evaluate(x, eval);
         let mut rhs = self.residual(p, x, eval);
-        if let Some(chord) = &self.chord {
-            if chord.serves(&eval.slopes) {
-                let step = chord.lu.solve(&rhs);
+        if let Some(step) = self
+            .chord
+            .as_ref()
+            .and_then(|chord| self.chord_step(chord, &eval.slopes, &rhs))
+        {
+            {
                 let mut small = true;
                 for (s, tolerance) in step.iter().zip(&self.tolerance) {
                     // Written so that a NaN fails the test.
