@@ -39,6 +39,8 @@ const MAX_ITERATIONS: u32 = 40;
 const DC_ITERATIONS: u32 = 500;
 /// Largest change of a Jacobian column, relative to its size, for which the last LU factors still serve.
 const CHORD_DRIFT: f64 = 0.02;
+/// Chord steps tried in one sample before a new factorisation.
+const CHORD_STEPS: u32 = 3;
 
 /// Everything the stage knows after one sample, in volts and amps.
 #[derive(Clone, Copy, Debug, Default, PartialEq)]
@@ -333,27 +335,40 @@ impl StageDevices {
         };
         self.evaluate(x, eval);
         let mut rhs = self.residual(p, x, eval);
-        if let Some(step) = self
+        // Chord steps while the kept factors serve: accepted once a step is within tolerance; a larger step
+        // (within a quarter of the step limits) is taken and the point evaluated again, up to CHORD_STEPS times.
+        let mut chord_steps = 0;
+        while let Some(step) = self
             .chord
             .as_ref()
             .and_then(|chord| self.chord_step(chord, &eval.slopes, &rhs))
         {
-            {
-                let mut small = true;
-                for (s, tolerance) in step.iter().zip(&self.tolerance) {
-                    // Written so that a NaN fails the test.
-                    small &= s.abs() <= *tolerance;
-                }
-                if small {
-                    for (x, s) in x.iter_mut().zip(&step) {
-                        *x += s;
-                    }
-                    eval.carry(&step);
-                    report.converged = true;
-                    report.chord = true;
-                    return report;
-                }
+            let mut small = true;
+            let mut modest = true;
+            for ((s, tolerance), max_step) in step.iter().zip(&self.tolerance).zip(&self.max_step) {
+                // Written so that a NaN fails both tests.
+                small &= s.abs() <= *tolerance;
+                modest &= s.abs() <= 0.25 * max_step;
             }
+            if small {
+                for (x, s) in x.iter_mut().zip(&step) {
+                    *x += s;
+                }
+                eval.carry(&step);
+                report.converged = true;
+                report.chord = true;
+                return report;
+            }
+            chord_steps += 1;
+            if !modest || chord_steps >= CHORD_STEPS || report.iterations >= max_iterations {
+                break;
+            }
+            for (x, s) in x.iter_mut().zip(&step) {
+                *x += s;
+            }
+            report.iterations += 1;
+            self.evaluate(x, eval);
+            rhs = self.residual(p, x, eval);
         }
         // Per-unknown step limits (a trust region): when a step that hit its limit is followed by a step the
         // other way, the limit halves, so a Newton 2-cycle (overshoot one way, then back) closes in like
