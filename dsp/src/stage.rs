@@ -509,8 +509,10 @@ impl Stage {
                 pairs,
                 active_pair: position.min(c.position.len().saturating_sub(1)),
                 max_step: [50.0, 5.0, 50.0, 5.0, 4.0],
-                // Step sizes below which Newton stops; the error left is about the square of these.
-                tolerance: [1e-3, 1e-4, 1e-3, 1e-4, 1e-3],
+                // Step sizes below which Newton stops (10 mV on the plates, 1 mV on the grids): the error left is
+                // about their square after a Newton step and CHORD_DRIFT times them after a chord step, far
+                // below what the ngspice cross-check resolves (its figures do not move with these).
+                tolerance: [1e-2, 1e-3, 1e-2, 1e-3, 1e-2],
                 column_weight: [0.0; PORTS],
                 k_columns: [[0.0; PORTS]; PORTS],
                 chord: None,
@@ -791,7 +793,7 @@ mod tests {
             "chord steps were rarely used: {chord_steps} of {samples}"
         );
         eprintln!("chord steps {chord_steps} of {samples}, largest difference {worst:.2e} V");
-        // Newton's own step tolerance is 1 mV on the plate unknowns; the two solves must agree within it.
+        // The plate unknowns' step tolerance is 10 mV; the two solves must agree within a tenth of it.
         assert!(worst < 1e-3, "chord and fresh solves differ by {worst} V");
     }
 }
