@@ -22,7 +22,9 @@
 //! Latency: each stage's filter delays by 2K - 1 samples at its high rate. A decimation stage may take its
 //! output at the second sample of each input pair instead of the first (one sample less delay at that rate);
 //! choosing this per stage makes the round trip an exact whole number of base samples with no added delay
-//! line: 47 base samples at 2x, 54 at 4x, 56 at 8x and 57 at 16x (see `latency`).
+//! line: 47 base samples at 2x, 54 at 4x, 56 at 8x and 57 at 16x (see `latency`). A decimator's output
+//! depends on its last `decimator_memory` input blocks, one more than the latency (a linear-phase FIR reaches
+//! back twice its delay, and the decimator's delay is half the round trip's).
 
 use serde::{Deserialize, Serialize};
 
@@ -51,7 +53,7 @@ impl Quality {
         Quality::X16,
     ];
 
-    pub fn factor(self) -> usize {
+    pub const fn factor(self) -> usize {
         match self {
             Quality::X1 => 1,
             Quality::X2 => 2,
@@ -67,7 +69,7 @@ impl Quality {
     }
 
     /// Number of 2x stages.
-    fn stages(self) -> usize {
+    const fn stages(self) -> usize {
         self.factor().trailing_zeros() as usize
     }
 }
@@ -84,6 +86,12 @@ const K1: usize = 24;
 const K2: usize = 8;
 const K3: usize = 5;
 const K4: usize = 4;
+
+/// Ring sizes of each stage's history (`SymmetricWindow`): the next power of two.
+const M1: usize = K1.next_power_of_two();
+const M2: usize = K2.next_power_of_two();
+const M3: usize = K3.next_power_of_two();
+const M4: usize = K4.next_power_of_two();
 
 /// Stage designs, from the stage next to the base rate upwards. Each is the shortest K (with its window shape)
 /// that meets the chain targets in the module comment. The stop band a stage must cover is everything that
@@ -136,252 +144,256 @@ fn halfband_taps<const K: usize>(beta: f64, gain: f64) -> [f64; K] {
 
 /// The last 2K inputs of one stage's symmetric branch, kept so that both members of each tap pair read
 /// forwards: `near` holds lags 0 .. K - 1 newest first, `far` lags 2K - 1 .. K oldest first, so near[j] and
-/// far[j] share tap j. Each is a ring of K written twice (at i and i + K), so its window is one contiguous
-/// slice, which the compiler turns into vector loads; every index is provably in range (`step`, `step_back`,
-/// `min`), so no bounds check is left either.
+/// far[j] share tap j. Each is a ring of M slots (M, a power of two, at least K) written twice, at i and i + M,
+/// so that any K consecutive slots are one contiguous fixed-size slice, which the compiler turns into vector
+/// loads. One counter `count` (the pushes so far, modulo M) places both: `near` fills downwards from slot
+/// !count mod M and `far` upwards to slot count mod M. Every index is a masked counter plus less than M, so no
+/// bounds check or wrap-around test is left.
 #[derive(Clone, Debug)]
-struct SymmetricWindow<const K: usize> {
-    near: Box<[[f64; K]; 2]>,
-    far: Box<[[f64; K]; 2]>,
-    /// Start of the newest-first window in `near` (lag 0).
-    near_pos: usize,
-    /// Slot of the newest sample in `far` (lag K); the window starts one after it.
-    far_pos: usize,
+struct SymmetricWindow<const K: usize, const M: usize> {
+    near: [[f64; M]; 2],
+    far: [[f64; M]; 2],
+    count: usize,
 }
 
-impl<const K: usize> SymmetricWindow<K> {
+impl<const K: usize, const M: usize> SymmetricWindow<K, M> {
+    const FITS: () = assert!(M.is_power_of_two() && M >= K && K > 0);
+
     fn new() -> Self {
+        let () = Self::FITS;
         SymmetricWindow {
-            near: Box::new([[0.0; K]; 2]),
-            far: Box::new([[0.0; K]; 2]),
-            near_pos: 0,
-            far_pos: 0,
+            near: [[0.0; M]; 2],
+            far: [[0.0; M]; 2],
+            count: 0,
         }
     }
 
+    /// Slot of the newest sample in `near` (lag j sits j slots above it).
     #[inline(always)]
-    fn push(&mut self, x: f64) {
+    fn near_slot(count: usize) -> usize {
+        !count & (M - 1)
+    }
+
+    /// Push one sample; returns the slot of it in `near`, for `halves` and for a companion ring written in
+    /// step with `near` (the centre tap of a decimation stage).
+    #[inline(always)]
+    fn push(&mut self, x: f64) -> usize {
         let near = self.near.as_flattened_mut();
-        // Lag K - 1 becomes lag K: it moves to the far ring.
-        let leaving = near[self.near_pos.min(K - 1) + K - 1];
-        self.near_pos = step_back(self.near_pos, K);
-        near[self.near_pos] = x;
-        near[self.near_pos + K] = x;
         let far = self.far.as_flattened_mut();
-        self.far_pos = step(self.far_pos, K);
-        far[self.far_pos] = leaving;
-        far[self.far_pos + K] = leaving;
+        // Lag K - 1 becomes lag K: the newest of the far half, at the top of its window.
+        let leaving = near[Self::near_slot(self.count) + K - 1];
+        self.count = self.count.wrapping_add(1);
+        let top = self.count & (M - 1);
+        far[top] = leaving;
+        far[top + M] = leaving;
+        let slot = Self::near_slot(self.count);
+        near[slot] = x;
+        near[slot + M] = x;
+        slot
     }
 
     /// (lags 0 .. K - 1, lags 2K - 1 .. K).
     #[inline(always)]
     fn halves(&self) -> (&[f64; K], &[f64; K]) {
-        let n = self.near_pos.min(K - 1);
-        let f = self.far_pos.min(K - 1) + 1;
-        let near = &self.near.as_flattened()[n..n + K];
-        let far = &self.far.as_flattened()[f..f + K];
-        (
-            near.try_into().unwrap_or(&[0.0; K]),
-            far.try_into().unwrap_or(&[0.0; K]),
-        )
+        let slot = Self::near_slot(self.count);
+        // The far window ends at the top slot (count mod M), in the upper copy: it starts M - K + 1 above it.
+        let start = (self.count & (M - 1)) + M + 1 - K;
+        let near = self.near.as_flattened()[slot..].first_chunk::<K>();
+        let far = self.far.as_flattened()[start..].first_chunk::<K>();
+        (near.unwrap_or(&[0.0; K]), far.unwrap_or(&[0.0; K]))
     }
 
     fn fill(&mut self, value: f64) {
-        *self.near = [[value; K]; 2];
-        *self.far = [[value; K]; 2];
+        self.near = [[value; M]; 2];
+        self.far = [[value; M]; 2];
     }
 }
 
-/// A plain delay line for the centre tap of a decimation stage: a ring of 2K samples read at a fixed lag (up
-/// to 2K - 1) through an index that moves with the write index.
-#[derive(Clone, Debug)]
-struct CentreDelay<const K: usize> {
-    data: Box<[[f64; K]; 2]>,
-    write: usize,
-    read: usize,
-}
+/// A stage's K taps, aligned so that vector multiplies can read them from memory directly.
+#[derive(Clone, Copy, Debug)]
+#[repr(C, align(16))]
+struct Taps<const K: usize>([f64; K]);
 
-impl<const K: usize> CentreDelay<K> {
-    fn new(lag: usize) -> Self {
-        CentreDelay {
-            data: Box::new([[0.0; K]; 2]),
-            write: 0,
-            read: (2 * K - lag) % (2 * K),
+/// sum_j taps[j] (near[j] + far[j]): a symmetric FIR, one multiply per pair of taps. Four partial sums (tap j
+/// adds into sum j mod 4) keep several additions in flight and map onto vector lanes; they combine as
+/// (s0 + s2) + (s1 + s3). Kept out of line: inlined into a stage, the compiler pairs its result with the
+/// stage's other output and leaves the loop scalar; on its own it becomes vector code.
+#[inline(never)]
+fn symmetric_dot<const K: usize>(taps: &Taps<K>, near: &[f64; K], far: &[f64; K]) -> f64 {
+    let mut s = [0.0f64; 4];
+    let (t4, t_rest) = taps.0.as_chunks::<4>();
+    let (n4, n_rest) = near.as_chunks::<4>();
+    let (f4, f_rest) = far.as_chunks::<4>();
+    for ((t, n), f) in t4.iter().zip(n4).zip(f4) {
+        for l in 0..4 {
+            s[l] += t[l] * (n[l] + f[l]);
         }
     }
-
-    /// Push one sample and return the one `lag` samples before it.
-    #[inline(always)]
-    fn push(&mut self, x: f64) -> f64 {
-        let data = self.data.as_flattened_mut();
-        self.write = step(self.write, 2 * K);
-        self.read = step(self.read, 2 * K);
-        data[self.write] = x;
-        data[self.read]
-    }
-
-    fn fill(&mut self, value: f64) {
-        *self.data = [[value; K]; 2];
-    }
-}
-
-/// i + 1 modulo n, for i < n (the result is below n whatever i is, which lets the compiler drop bounds checks).
-#[inline(always)]
-fn step(i: usize, n: usize) -> usize {
-    if i + 1 >= n {
-        0
-    } else {
-        i + 1
-    }
-}
-
-/// i - 1 modulo n, for i < n (the result is below n whatever i is).
-#[inline(always)]
-fn step_back(i: usize, n: usize) -> usize {
-    if i == 0 || i > n {
-        n - 1
-    } else {
-        i - 1
-    }
-}
-
-/// sum_j taps[j] (near[j] + far[j]): a symmetric FIR, one multiply per pair of taps. Four partial sums keep
-/// several additions in flight (and map onto vector lanes).
-#[inline(always)]
-fn symmetric_dot<const K: usize>(taps: &[f64; K], near: &[f64; K], far: &[f64; K]) -> f64 {
-    let mut s = [0.0f64; 4];
-    for j in 0..K {
-        s[j % 4] += taps[j] * (near[j] + far[j]);
+    for (l, ((t, n), f)) in t_rest.iter().zip(n_rest).zip(f_rest).enumerate() {
+        s[l] += t * (n + f);
     }
     (s[0] + s[2]) + (s[1] + s[3])
 }
 
-/// One 2x interpolation stage. For input x[m] it writes y[2m] (the symmetric branch over x[m] .. x[m - 2K + 1])
+/// One 2x interpolation stage. For input x[m] it gives y[2m] (the symmetric branch over x[m] .. x[m - 2K + 1])
 /// and y[2m + 1] = x[m - K + 1] (the centre tap alone): a delay of 2K - 1 samples at the high rate.
 #[derive(Clone, Debug)]
-struct UpStage<const K: usize> {
+struct UpStage<const K: usize, const M: usize> {
     /// The taps times 2 (the interpolation gain).
-    taps: [f64; K],
-    history: SymmetricWindow<K>,
+    taps: Taps<K>,
+    history: SymmetricWindow<K, M>,
 }
 
-impl<const K: usize> UpStage<K> {
+impl<const K: usize, const M: usize> UpStage<K, M> {
     fn new(beta: f64) -> Self {
         UpStage {
-            taps: halfband_taps(beta, 2.0),
+            taps: Taps(halfband_taps(beta, 2.0)),
             history: SymmetricWindow::new(),
         }
     }
 
     #[inline(always)]
-    fn process(&mut self, x: f64) -> (f64, f64) {
+    fn process(&mut self, x: f64) -> [f64; 2] {
         self.history.push(x);
         let (near, far) = self.history.halves();
-        (symmetric_dot(&self.taps, near, far), near[K - 1])
+        [symmetric_dot(&self.taps, near, far), near[K - 1]]
     }
 
-    /// Each input in turn becomes two outputs: `out` is twice as long as `input`.
+    /// Each input in turn becomes two outputs: `N2` is twice `N`.
     #[inline(always)]
-    fn interpolate(&mut self, input: &[f64], out: &mut [f64]) {
-        for (x, pair) in input.iter().zip(out.chunks_exact_mut(2)) {
-            let (even, odd) = self.process(*x);
-            pair[0] = even;
-            pair[1] = odd;
+    fn interpolate<const N: usize, const N2: usize>(&mut self, input: [f64; N]) -> [f64; N2] {
+        let mut out = [0.0; N2];
+        for (x, pair) in input.into_iter().zip(out.as_chunks_mut::<2>().0) {
+            *pair = self.process(x);
+        }
+        out
+    }
+}
+
+/// One 2x decimation stage. Input pairs (v[2m], v[2m + 1]), output y[m] = (h * v)[2m + LATE]: with `LATE`
+/// false the delay is 2K - 1 input samples, with `LATE` true one less (the output is taken at the second
+/// sample of the pair). `LATE` is fixed per quality (`late_picks`), so it is a compile-time choice.
+#[derive(Clone, Debug)]
+struct DownStage<const K: usize, const M: usize> {
+    taps: Taps<K>,
+    /// The pair member the symmetric branch reads (the second with `LATE`).
+    branch: SymmetricWindow<K, M>,
+    /// The other pair member, for the centre tap: a ring written twice at the same slots as the branch's
+    /// `near` ring, so that until a write, the slot it goes to plus j holds lag j for j = 1 .. M.
+    centre: [[f64; M]; 2],
+}
+
+impl<const K: usize, const M: usize> DownStage<K, M> {
+    fn new(beta: f64) -> Self {
+        DownStage {
+            taps: Taps(halfband_taps(beta, 1.0)),
+            branch: SymmetricWindow::new(),
+            centre: [[0.0; M]; 2],
         }
     }
-}
 
-/// One 2x decimation stage. Input pairs (v[2m], v[2m + 1]), output y[m] = (h * v)[2m + late]: with `late`
-/// false the delay is 2K - 1 input samples, with `late` true one less (the output is taken at the second
-/// sample of the pair).
-#[derive(Clone, Debug)]
-struct DownStage<const K: usize> {
-    taps: [f64; K],
-    late: bool,
-    /// The pair member the symmetric branch reads.
-    branch: SymmetricWindow<K>,
-    /// The other pair member, for the centre tap.
-    centre: CentreDelay<K>,
-}
-
-impl<const K: usize> DownStage<K> {
-    fn new(beta: f64, late: bool) -> Self {
+    #[inline(always)]
+    fn process<const LATE: bool>(&mut self, [first, second]: [f64; 2]) -> f64 {
         // The centre tap sits 2K - 1 input samples back: with the output at v[2m] that is v[2m - 2K + 1], the
         // second member of the pair K back; with the output at v[2m + 1] it is v[2m + 2 - 2K], the first member
         // of the pair K - 1 back.
-        let centre_lag = if late { K - 1 } else { K };
-        DownStage {
-            taps: halfband_taps(beta, 1.0),
-            late,
-            branch: SymmetricWindow::new(),
-            centre: CentreDelay::new(centre_lag),
-        }
-    }
-
-    #[inline(always)]
-    fn process(&mut self, first: f64, second: f64) -> f64 {
-        let (b, c) = if self.late {
-            (second, first)
+        let (b, c, centre_lag) = if LATE {
+            (second, first, K - 1)
         } else {
-            (first, second)
+            (first, second, K)
         };
-        self.branch.push(b);
-        let centre = self.centre.push(c);
+        let slot = self.branch.push(b);
+        let centre = self.centre.as_flattened_mut();
+        // Read the centre tap before the new member goes in (K is at most M).
+        let delayed = centre[slot + centre_lag];
+        centre[slot] = c;
+        centre[slot + M] = c;
         let (near, far) = self.branch.halves();
-        symmetric_dot(&self.taps, near, far) + 0.5 * centre
+        symmetric_dot(&self.taps, near, far) + 0.5 * delayed
     }
 
-    /// Each pair of inputs in turn becomes one output: `out` is half as long as `input`.
+    /// Each pair of inputs in turn becomes one output: `N` is twice `H`.
     #[inline(always)]
-    fn decimate(&mut self, input: &[f64], out: &mut [f64]) {
-        for (pair, y) in input.chunks_exact(2).zip(out.iter_mut()) {
-            *y = self.process(pair[0], pair[1]);
+    fn decimate<const N: usize, const H: usize, const LATE: bool>(
+        &mut self,
+        input: [f64; N],
+    ) -> [f64; H] {
+        let mut out = [0.0; H];
+        for (pair, y) in input.as_chunks::<2>().0.iter().zip(out.iter_mut()) {
+            *y = self.process::<LATE>(*pair);
         }
+        out
     }
 
     fn fill(&mut self, value: f64) {
         self.branch.fill(value);
-        self.centre.fill(value);
+        self.centre = [[value; M]; 2];
     }
 }
 
 /// Round-trip delay of the up / down cascade at `quality` in high-rate samples before the decimators' late
 /// picks, as (delay, factor).
-fn cascade_delay(quality: Quality) -> (usize, usize) {
+const fn cascade_delay(quality: Quality) -> (usize, usize) {
     let factor = quality.factor();
-    let delay = STAGES[..quality.stages()]
-        .iter()
-        .enumerate()
+    let mut delay = 0;
+    let mut s = 0;
+    while s < quality.stages() {
         // Stage s (0-based) runs at 2^(s+1) times the base rate: one of its samples is factor / 2^(s+1)
         // high-rate samples. Interpolator and decimator each delay 2K - 1 of them.
-        .map(|(s, d)| 2 * (2 * d.k - 1) * (factor >> (s + 1)))
-        .sum();
+        delay += 2 * (2 * STAGES[s].k - 1) * (factor >> (s + 1));
+        s += 1;
+    }
     (delay, factor)
 }
 
 /// Whether the decimator of each stage (from the base rate up) takes its output late (one stage sample less
 /// delay): the binary digits of the round trip's excess over a whole number of base samples.
-fn late_picks(quality: Quality) -> [bool; 4] {
+const fn late_picks(quality: Quality) -> [bool; 4] {
     let (delay, factor) = cascade_delay(quality);
     let excess = delay % factor;
-    std::array::from_fn(|s| s < quality.stages() && excess & (factor >> (s + 1)) != 0)
+    let mut late = [false; 4];
+    let mut s = 0;
+    while s < quality.stages() {
+        late[s] = excess & (factor >> (s + 1)) != 0;
+        s += 1;
+    }
+    late
+}
+
+/// Base samples that one output of a Downsampler at `quality` depends on, the current block included: after
+/// that many blocks of input its state holds nothing older (a decimator switched on mid-stream gives exact
+/// output from then on). Stage s (from the base rate up) takes its output m from input pairs m - 2K_s + 1 .. m,
+/// the earliest through the symmetric branch (the first member of the pair, or the second when it picks
+/// late; the centre tap reaches back at most K_s pairs). Chained from the base rate up, output n reaches back
+/// to high-rate sample factor n - D, D = sum over stages of 2^(S - s) (4 K_s - 2 - late_s) with S stages;
+/// that sample lies ceil(D / factor) blocks before block n.
+pub const fn decimator_memory(quality: Quality) -> usize {
+    let late = late_picks(quality);
+    let stages = quality.stages();
+    let mut reach = 0;
+    let mut s = 0;
+    while s < stages {
+        reach += (4 * STAGES[s].k - 2 - late[s] as usize) << (stages - 1 - s);
+        s += 1;
+    }
+    reach.div_ceil(quality.factor()) + 1
 }
 
 /// Interpolator from the base rate to `factor` times the base rate.
 #[derive(Clone, Debug)]
 pub struct Upsampler {
-    factor: usize,
+    quality: Quality,
     /// Stages from the base rate up; only the first log2(factor) of them run.
-    s1: UpStage<K1>,
-    s2: UpStage<K2>,
-    s3: UpStage<K3>,
-    s4: UpStage<K4>,
+    s1: UpStage<K1, M1>,
+    s2: UpStage<K2, M2>,
+    s3: UpStage<K3, M3>,
+    s4: UpStage<K4, M4>,
 }
 
 impl Upsampler {
     pub fn new(quality: Quality) -> Self {
         Upsampler {
-            factor: quality.factor(),
+            quality,
             s1: UpStage::new(STAGES[0].beta),
             s2: UpStage::new(STAGES[1].beta),
             s3: UpStage::new(STAGES[2].beta),
@@ -397,56 +409,66 @@ impl Upsampler {
         self.s4.history.fill(value);
     }
 
-    /// Push one base-rate sample and write `factor` high-rate samples to `out`.
+    /// Push one base-rate sample and write `factor` high-rate samples to `out` (nothing happens if `out` is
+    /// shorter than that).
     #[inline]
     pub fn process(&mut self, input: f64, out: &mut [f64]) {
-        let Some(out) = out.get_mut(..self.factor) else {
-            return;
-        };
         // Stage by stage over the block: each stage sees its inputs in time order.
-        let (mut a, mut b) = ([0.0; 8], [0.0; 8]);
-        match self.factor {
-            2 => self.s1.interpolate(&[input], out),
-            4 => {
-                self.s1.interpolate(&[input], &mut a[..2]);
-                self.s2.interpolate(&a[..2], out);
-            }
-            8 => {
-                self.s1.interpolate(&[input], &mut a[..2]);
-                self.s2.interpolate(&a[..2], &mut b[..4]);
-                self.s3.interpolate(&b[..4], out);
-            }
-            16 => {
-                self.s1.interpolate(&[input], &mut a[..2]);
-                self.s2.interpolate(&a[..2], &mut b[..4]);
-                self.s3.interpolate(&b[..4], &mut a[..8]);
-                self.s4.interpolate(&a[..8], out);
-            }
-            _ => out[0] = input,
+        match self.quality {
+            Quality::X1 => put(out, || [input]),
+            Quality::X2 => put(out, || self.s1.interpolate::<1, 2>([input])),
+            Quality::X4 => put(out, || {
+                let a = self.s1.interpolate::<1, 2>([input]);
+                self.s2.interpolate::<2, 4>(a)
+            }),
+            Quality::X8 => put(out, || {
+                let a = self.s1.interpolate::<1, 2>([input]);
+                let b = self.s2.interpolate::<2, 4>(a);
+                self.s3.interpolate::<4, 8>(b)
+            }),
+            Quality::X16 => put(out, || {
+                let a = self.s1.interpolate::<1, 2>([input]);
+                let b = self.s2.interpolate::<2, 4>(a);
+                let c = self.s3.interpolate::<4, 8>(b);
+                self.s4.interpolate::<8, 16>(c)
+            }),
         }
+    }
+}
+
+/// Write the block `make` gives to the front of `out`, if it fits (if not, `make` does not run).
+#[inline(always)]
+fn put<const N: usize>(out: &mut [f64], make: impl FnOnce() -> [f64; N]) {
+    if let Some(out) = out.first_chunk_mut::<N>() {
+        *out = make();
     }
 }
 
 /// Decimator from `factor` times the base rate back to the base rate.
 #[derive(Clone, Debug)]
 pub struct Downsampler {
-    factor: usize,
+    quality: Quality,
     /// Stages from the base rate up; only the first log2(factor) of them run.
-    s1: DownStage<K1>,
-    s2: DownStage<K2>,
-    s3: DownStage<K3>,
-    s4: DownStage<K4>,
+    s1: DownStage<K1, M1>,
+    s2: DownStage<K2, M2>,
+    s3: DownStage<K3, M3>,
+    s4: DownStage<K4, M4>,
 }
+
+/// The late picks of each quality's decimation stages, as constants for `DownStage::decimate`.
+const LATE2: [bool; 4] = late_picks(Quality::X2);
+const LATE4: [bool; 4] = late_picks(Quality::X4);
+const LATE8: [bool; 4] = late_picks(Quality::X8);
+const LATE16: [bool; 4] = late_picks(Quality::X16);
 
 impl Downsampler {
     pub fn new(quality: Quality) -> Self {
-        let late = late_picks(quality);
         Downsampler {
-            factor: quality.factor(),
-            s1: DownStage::new(STAGES[0].beta, late[0]),
-            s2: DownStage::new(STAGES[1].beta, late[1]),
-            s3: DownStage::new(STAGES[2].beta, late[2]),
-            s4: DownStage::new(STAGES[3].beta, late[3]),
+            quality,
+            s1: DownStage::new(STAGES[0].beta),
+            s2: DownStage::new(STAGES[1].beta),
+            s3: DownStage::new(STAGES[2].beta),
+            s4: DownStage::new(STAGES[3].beta),
         }
     }
 
@@ -458,35 +480,33 @@ impl Downsampler {
         self.s4.fill(value);
     }
 
-    /// Push `factor` high-rate samples and return one base-rate sample.
+    /// Push `factor` high-rate samples and return one base-rate sample (0, and nothing happens, if `input` is
+    /// shorter than that).
     #[inline]
     pub fn process(&mut self, input: &[f64]) -> f64 {
-        let Some(input) = input.get(..self.factor) else {
-            return 0.0;
-        };
         // Stage by stage over the block, from the high rate down: each stage sees its inputs in time order.
-        let (mut a, mut b) = ([0.0; 8], [0.0; 8]);
-        let mut y = [0.0];
-        match self.factor {
-            2 => self.s1.decimate(input, &mut y),
-            4 => {
-                self.s2.decimate(input, &mut a[..2]);
-                self.s1.decimate(&a[..2], &mut y);
-            }
-            8 => {
-                self.s3.decimate(input, &mut a[..4]);
-                self.s2.decimate(&a[..4], &mut b[..2]);
-                self.s1.decimate(&b[..2], &mut y);
-            }
-            16 => {
-                self.s4.decimate(input, &mut a[..8]);
-                self.s3.decimate(&a[..8], &mut b[..4]);
-                self.s2.decimate(&b[..4], &mut a[..2]);
-                self.s1.decimate(&a[..2], &mut y);
-            }
-            _ => y[0] = input[0],
-        }
-        y[0]
+        let y = match self.quality {
+            Quality::X1 => input.first_chunk::<1>().copied(),
+            Quality::X2 => input
+                .first_chunk::<2>()
+                .map(|&v| self.s1.decimate::<2, 1, { LATE2[0] }>(v)),
+            Quality::X4 => input.first_chunk::<4>().map(|&v| {
+                let a = self.s2.decimate::<4, 2, { LATE4[1] }>(v);
+                self.s1.decimate::<2, 1, { LATE4[0] }>(a)
+            }),
+            Quality::X8 => input.first_chunk::<8>().map(|&v| {
+                let a = self.s3.decimate::<8, 4, { LATE8[2] }>(v);
+                let b = self.s2.decimate::<4, 2, { LATE8[1] }>(a);
+                self.s1.decimate::<2, 1, { LATE8[0] }>(b)
+            }),
+            Quality::X16 => input.first_chunk::<16>().map(|&v| {
+                let a = self.s4.decimate::<16, 8, { LATE16[3] }>(v);
+                let b = self.s3.decimate::<8, 4, { LATE16[2] }>(a);
+                let c = self.s2.decimate::<4, 2, { LATE16[1] }>(b);
+                self.s1.decimate::<2, 1, { LATE16[0] }>(c)
+            }),
+        };
+        y.map_or(0.0, |[y]| y)
     }
 }
 
@@ -670,5 +690,77 @@ mod tests {
     fn latency_per_quality() {
         let got: Vec<usize> = Quality::ALL.iter().map(|&q| latency(q)).collect();
         assert_eq!(got, [0, 47, 54, 56, 57]);
+    }
+
+    /// A decimator forgets everything older than `decimator_memory` blocks: two decimators with different
+    /// histories (different garbage, different lengths, so their rings sit at different positions) give the same
+    /// output, to the bit, from the block that completes `decimator_memory` common blocks on; one block
+    /// earlier they still differ. That is the defining property of an FIR filter's memory (its output is a
+    /// fixed combination of the last span of inputs, nothing else), checked here on the running code.
+    #[test]
+    fn decimator_forgets_after_its_memory() {
+        let mut state = 0x2545_f491_4f6c_dd1du64;
+        let mut noise = move |scale: f64| {
+            state ^= state << 13;
+            state ^= state >> 7;
+            state ^= state << 17;
+            scale * ((state >> 11) as f64 / (1u64 << 53) as f64 - 0.5)
+        };
+        for q in Quality::ALL {
+            let f = q.factor();
+            let memory = decimator_memory(q);
+            let mut a = Downsampler::new(q);
+            let mut b = Downsampler::new(q);
+            let mut block = vec![0.0; f];
+            // Garbage: large, and of different lengths (a prime number of blocks apart).
+            let (mut last_a, mut last_b) = (0.0, 0.0);
+            for _ in 0..211 {
+                block.iter_mut().for_each(|v| *v = noise(1e6));
+                last_a = a.process(&block);
+            }
+            for _ in 0..97 {
+                block.iter_mut().for_each(|v| *v = noise(1e6));
+                last_b = b.process(&block);
+            }
+            // The common input: outputs[i] comes out with common block i + 1.
+            let mut outputs = Vec::new();
+            for _ in 0..memory + 40 {
+                block.iter_mut().for_each(|v| *v = noise(2.0));
+                outputs.push((a.process(&block), b.process(&block)));
+            }
+            for (i, (ya, yb)) in outputs.iter().enumerate().skip(memory - 1) {
+                assert_eq!(
+                    ya.to_bits(),
+                    yb.to_bits(),
+                    "{q:?}: block {} of {memory}",
+                    i + 1
+                );
+            }
+            let (ya, yb) = if memory >= 2 {
+                outputs[memory - 2]
+            } else {
+                (last_a, last_b)
+            };
+            assert_ne!(
+                ya,
+                yb,
+                "{q:?}: {} common blocks already suffice",
+                memory - 1
+            );
+        }
+    }
+
+    /// The memory in blocks, worked by hand from the tap counts and late picks: a stage of K reaches back
+    /// 4K - 2 input samples (one less when it picks late), so the reach at the high rate is
+    /// 2x: 94 = 47 x 2; 4x: 93 x 2 + 30 = 216 = 54 x 4; 8x: 93 x 4 + 29 x 2 + 18 = 448 = 56 x 8;
+    /// 16x: 93 x 8 + 30 x 4 + 17 x 2 + 14 = 912 = 57 x 16 base samples, plus the current block. Each is the
+    /// latency plus one: the round trip's delay equals the decimator's reach.
+    #[test]
+    fn decimator_memory_per_quality() {
+        let got: Vec<usize> = Quality::ALL.iter().map(|&q| decimator_memory(q)).collect();
+        assert_eq!(got, [1, 48, 55, 57, 58]);
+        for q in Quality::ALL {
+            assert_eq!(decimator_memory(q), latency(q) + 1, "{q:?}");
+        }
     }
 }
