@@ -493,6 +493,51 @@ impl Engine {
 mod tests {
     use super::*;
 
+    /// A probe switched on mid-stream gives, from `decimator_memory` host samples after switching on, exactly
+    /// the output it gives when on all along (the compare renders read the clamp node only around their scope
+    /// passage); switching probes never touches the model, so the listening output is the same throughout.
+    #[test]
+    fn probe_switched_on_late_is_exact_after_decimator_memory() {
+        let settings = Settings {
+            gain: 1.0,
+            level: 0.5,
+            position: 1,
+        };
+        let input: Vec<f32> = (0..3000)
+            .map(|n| {
+                (0.9 * (2.0 * std::f64::consts::PI * 220.0 * n as f64 / 48_000.0).sin()) as f32
+            })
+            .collect();
+        for quality in Quality::ALL {
+            let mut always =
+                Engine::new(&Circuit::reference(), 48_000.0, quality, settings).unwrap();
+            always.set_active_probes(&[Probe::Listen, Probe::Clamp]);
+            let mut late = always.clone();
+            late.set_active_probes(&[Probe::Listen]);
+            let switch_on = 1500;
+            let exact_from = switch_on + oversampling::decimator_memory(quality) - 1;
+            for (n, &x) in input.iter().enumerate() {
+                if n == switch_on {
+                    late.set_active_probes(&[Probe::Listen, Probe::Clamp]);
+                }
+                let a = *always.process_sample(x);
+                let b = *late.process_sample(x);
+                assert_eq!(
+                    a.listen.to_bits(),
+                    b.listen.to_bits(),
+                    "{quality:?} listen at {n}"
+                );
+                if n >= exact_from {
+                    assert_eq!(
+                        a.clamp_volts.to_bits(),
+                        b.clamp_volts.to_bits(),
+                        "{quality:?} clamp at {n}"
+                    );
+                }
+            }
+        }
+    }
+
     /// The meters against their definitions, recomputed directly from every internal-rate stage probe of an
     /// identical engine: counts, f64::max / f64::min of the readouts, sums of I^2 and of V I times the period.
     #[test]

@@ -14,6 +14,7 @@ use crate::report::{
     self, AbSegment, DiInfo, DiResult, PartInfo, PartLoad, Report, VariantInfo, ZenerLoad,
 };
 use breakdown_dsp::engine::CLAMPED_CURRENT;
+use breakdown_dsp::oversampling::decimator_memory;
 use breakdown_dsp::parts::FAMILY_1N47XXA;
 use breakdown_dsp::{Engine, Meters, Probe};
 use indicatif::{ProgressBar, ProgressStyle};
@@ -286,12 +287,28 @@ fn render_job(s: &Shared, di_index: usize, vi: usize) -> Result<DiResult, String
             variant.settings,
         )
         .map_err(|e| format!("variant '{}': {e}", variant.name))?;
-        // Only the listening output and the clamp node are read: skip the other probes' decimators.
-        engine.set_active_probes(&[Probe::Listen, Probe::Clamp]);
+        // Only the listening output is read throughout; the clamp node only for the scope passage, so its
+        // decimator runs from `decimator_memory` samples before the passage (its output is then exact) to the
+        // passage's end. The other probes' decimators never run.
         let latency = engine.latency();
+        let (clamp_on, clamp_off) = if c == scope_channel {
+            let first = scope_start + latency;
+            (
+                (first + 1).saturating_sub(decimator_memory(variant.quality)),
+                first + scope_len,
+            )
+        } else {
+            (usize::MAX, usize::MAX)
+        };
+        engine.set_active_probes(&[Probe::Listen]);
         let _flush = breakdown_dsp::denormals::FlushGuard::new();
         let mut out = Vec::with_capacity(frames);
         for n in 0..frames + latency {
+            if n == clamp_on {
+                engine.set_active_probes(&[Probe::Listen, Probe::Clamp]);
+            } else if n == clamp_off {
+                engine.set_active_probes(&[Probe::Listen]);
+            }
             let x = samples.get(n).copied().unwrap_or(0.0);
             let frame = engine.process_sample(x);
             if n >= latency {
