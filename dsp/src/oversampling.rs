@@ -87,11 +87,13 @@ const K2: usize = 8;
 const K3: usize = 5;
 const K4: usize = 4;
 
-/// Ring sizes of each stage's history (`SymmetricWindow`): the next power of two.
-const M1: usize = K1.next_power_of_two();
-const M2: usize = K2.next_power_of_two();
-const M3: usize = K3.next_power_of_two();
-const M4: usize = K4.next_power_of_two();
+/// Ring sizes of each stage's history (`SymmetricWindow`): stage s takes blocks of 2^(s-1) pushes and reads
+/// each push's window and centre tap (up to lag K) after the whole block is written, so its ring must reach
+/// K + 2^(s-1) - 1 pushes back; the next power of two above that.
+const M1: usize = (K1 + 1).next_power_of_two();
+const M2: usize = (K2 + 2).next_power_of_two();
+const M3: usize = (K3 + 4).next_power_of_two();
+const M4: usize = (K4 + 8).next_power_of_two();
 
 /// Stage designs, from the stage next to the base rate upwards. Each is the shortest K (with its window shape)
 /// that meets the chain targets in the module comment. The stop band a stage must cover is everything that
@@ -142,17 +144,36 @@ fn halfband_taps<const K: usize>(beta: f64, gain: f64) -> [f64; K] {
     taps.map(|t| t * gain)
 }
 
-/// The last 2K inputs of one stage's symmetric branch, kept so that both members of each tap pair read
-/// forwards: `near` holds lags 0 .. K - 1 newest first, `far` lags 2K - 1 .. K oldest first, so near[j] and
-/// far[j] share tap j. Each is a ring of M slots (M, a power of two, at least K) written twice, at i and i + M,
-/// so that any K consecutive slots are one contiguous fixed-size slice, which the compiler turns into vector
-/// loads. One counter `count` (the pushes so far, modulo M) places both: `near` fills downwards from slot
-/// !count mod M and `far` upwards to slot count mod M. Every index is a masked counter plus less than M, so no
-/// bounds check or wrap-around test is left.
+/// The last inputs of one stage's symmetric branch, kept so that both members of each tap pair read forwards:
+/// a window of 2K has `near` = lags 0 .. K - 1 newest first and `far` = lags 2K - 1 .. K oldest first, so
+/// near[j] and far[j] share tap j. Each half is a ring of M slots (a power of two) written twice, at i and
+/// i + M, so that any K consecutive slots are one contiguous fixed-size slice, which vector loads read. One
+/// counter `count` (the pushes so far) places both: `near` fills downwards from slot !count mod M and `far`
+/// upwards to slot count mod M. Every index is the masked counter plus less than M, so no bounds check or
+/// wrap-around test is left. M holds the windows of the last M - K + 1 pushes.
+///
+/// A vector load that covers a sample stored a moment before waits until the store has completed (a narrow
+/// store cannot be forwarded to a wider load: Intel 64 and IA-32 Architectures Optimization Reference Manual,
+/// "store forwarding"); that wait costs more than the whole sum, and it chains one push to the next. So a
+/// stage reads each window either before the push that completes it is written (`pending`: the two samples the
+/// push adds come beside the slices as values), or after all of its pushes of one block are written (`window`),
+/// so that the reads wait for the writes once per block instead of once per push.
 #[derive(Clone, Debug)]
 struct SymmetricWindow<const K: usize, const M: usize> {
     near: [[f64; M]; 2],
     far: [[f64; M]; 2],
+    count: usize,
+}
+
+/// The window that pushing `newest` makes, read before the push is written: near[0] (lag 0) stands for
+/// `newest` and far[K - 1] (lag K, the sample moving from the near half to the far half) for `moving`; the
+/// slices hold stale values there.
+struct Pending<'a, const K: usize> {
+    near: &'a [f64; K],
+    far: &'a [f64; K],
+    newest: f64,
+    moving: f64,
+    /// `count` once the push is written.
     count: usize,
 }
 
@@ -168,36 +189,61 @@ impl<const K: usize, const M: usize> SymmetricWindow<K, M> {
         }
     }
 
-    /// Slot of the newest sample in `near` (lag j sits j slots above it).
+    /// Slot of the newest sample in `near` after `count` pushes (lag j sits j slots above it).
     #[inline(always)]
-    fn near_slot(count: usize) -> usize {
+    fn slot(count: usize) -> usize {
         !count & (M - 1)
     }
 
-    /// Push one sample; returns the slot of it in `near`, for `halves` and for a companion ring written in
-    /// step with `near` (the centre tap of a decimation stage).
+    /// The window after pushing `newest`, before the push is written (`write` completes it).
     #[inline(always)]
-    fn push(&mut self, x: f64) -> usize {
-        let near = self.near.as_flattened_mut();
-        let far = self.far.as_flattened_mut();
-        // Lag K - 1 becomes lag K: the newest of the far half, at the top of its window.
-        let leaving = near[Self::near_slot(self.count) + K - 1];
-        self.count = self.count.wrapping_add(1);
-        let top = self.count & (M - 1);
-        far[top] = leaving;
-        far[top + M] = leaving;
-        let slot = Self::near_slot(self.count);
-        near[slot] = x;
-        near[slot + M] = x;
-        slot
+    fn pending(&self, newest: f64) -> Pending<'_, K> {
+        // Lag K - 1 becomes lag K. It was written one push or more ago.
+        let moving = self.near.as_flattened()[Self::slot(self.count) + K - 1];
+        let count = self.count.wrapping_add(1);
+        let (near, far) = self.window_at(count, 0);
+        Pending {
+            near,
+            far,
+            newest,
+            moving,
+            count,
+        }
     }
 
-    /// (lags 0 .. K - 1, lags 2K - 1 .. K).
+    /// Write a push that `pending` described.
     #[inline(always)]
-    fn halves(&self) -> (&[f64; K], &[f64; K]) {
-        let slot = Self::near_slot(self.count);
-        // The far window ends at the top slot (count mod M), in the upper copy: it starts M - K + 1 above it.
-        let start = (self.count & (M - 1)) + M + 1 - K;
+    fn write(&mut self, count: usize, newest: f64, moving: f64) {
+        let slot = Self::slot(count);
+        let top = count & (M - 1);
+        let near = self.near.as_flattened_mut();
+        near[slot] = newest;
+        near[slot + M] = newest;
+        let far = self.far.as_flattened_mut();
+        far[top] = moving;
+        far[top + M] = moving;
+        self.count = count;
+    }
+
+    #[inline(always)]
+    fn push(&mut self, newest: f64) {
+        let p = self.pending(newest);
+        let (count, moving) = (p.count, p.moving);
+        self.write(count, newest, moving);
+    }
+
+    /// The window of the push `back` pushes before the last one written (`back` below M - K + 1).
+    #[inline(always)]
+    fn window(&self, back: usize) -> (&[f64; K], &[f64; K]) {
+        self.window_at(self.count, back)
+    }
+
+    #[inline(always)]
+    fn window_at(&self, count: usize, back: usize) -> (&[f64; K], &[f64; K]) {
+        // Older windows start higher in `near` and lower in `far`. The far window ends at the top slot
+        // (count mod M) in the upper copy.
+        let slot = Self::slot(count) + back;
+        let start = (count & (M - 1)) + M + 1 - K - back;
         let near = self.near.as_flattened()[slot..].first_chunk::<K>();
         let far = self.far.as_flattened()[start..].first_chunk::<K>();
         (near.unwrap_or(&[0.0; K]), far.unwrap_or(&[0.0; K]))
@@ -216,23 +262,52 @@ struct Taps<const K: usize>([f64; K]);
 
 /// sum_j taps[j] (near[j] + far[j]): a symmetric FIR, one multiply per pair of taps. Four partial sums (tap j
 /// adds into sum j mod 4) keep several additions in flight and map onto vector lanes; they combine as
-/// (s0 + s2) + (s1 + s3). Kept out of line: inlined into a stage, the compiler pairs its result with the
-/// stage's other output and leaves the loop scalar; on its own it becomes vector code.
+/// (s0 + s2) + (s1 + s3). With `PENDING`, near[0] is `newest` and far[K - 1] is `moving` (see `Pending`).
+/// Kept out of line: inlined into a stage, the compiler pairs its result with the stage's other output and
+/// leaves the loop scalar; on its own it becomes vector code.
 #[inline(never)]
-fn symmetric_dot<const K: usize>(taps: &Taps<K>, near: &[f64; K], far: &[f64; K]) -> f64 {
+fn symmetric_sum<const K: usize, const PENDING: bool>(
+    taps: &Taps<K>,
+    near: &[f64; K],
+    far: &[f64; K],
+    newest: f64,
+    moving: f64,
+) -> f64 {
     let mut s = [0.0f64; 4];
     let (t4, t_rest) = taps.0.as_chunks::<4>();
     let (n4, n_rest) = near.as_chunks::<4>();
     let (f4, f_rest) = far.as_chunks::<4>();
-    for ((t, n), f) in t4.iter().zip(n4).zip(f4) {
+    for (c, ((t, n), f)) in t4.iter().zip(n4).zip(f4).enumerate() {
+        let (mut n, mut f) = (*n, *f);
+        if PENDING && c == 0 {
+            n[0] = newest;
+        }
+        if PENDING && 4 * c + 3 == K - 1 {
+            f[3] = moving;
+        }
         for l in 0..4 {
             s[l] += t[l] * (n[l] + f[l]);
         }
     }
     for (l, ((t, n), f)) in t_rest.iter().zip(n_rest).zip(f_rest).enumerate() {
+        let j = K - t_rest.len() + l;
+        let n = if PENDING && j == 0 { newest } else { *n };
+        let f = if PENDING && j == K - 1 { moving } else { *f };
         s[l] += t * (n + f);
     }
     (s[0] + s[2]) + (s[1] + s[3])
+}
+
+/// The symmetric sum over a window that `SymmetricWindow::pending` gave.
+#[inline(always)]
+fn pending_sum<const K: usize>(taps: &Taps<K>, w: &Pending<'_, K>) -> f64 {
+    symmetric_sum::<K, true>(taps, w.near, w.far, w.newest, w.moving)
+}
+
+/// The symmetric sum over a window that `SymmetricWindow::window` gave.
+#[inline(always)]
+fn written_sum<const K: usize>(taps: &Taps<K>, (near, far): (&[f64; K], &[f64; K])) -> f64 {
+    symmetric_sum::<K, false>(taps, near, far, 0.0, 0.0)
 }
 
 /// One 2x interpolation stage. For input x[m] it gives y[2m] (the symmetric branch over x[m] .. x[m - 2K + 1])
@@ -252,19 +327,29 @@ impl<const K: usize, const M: usize> UpStage<K, M> {
         }
     }
 
-    #[inline(always)]
-    fn process(&mut self, x: f64) -> [f64; 2] {
-        self.history.push(x);
-        let (near, far) = self.history.halves();
-        [symmetric_dot(&self.taps, near, far), near[K - 1]]
-    }
-
-    /// Each input in turn becomes two outputs: `N2` is twice `N`.
+    /// A block of N inputs in time order becomes 2N outputs (`N2` = 2N).
     #[inline(always)]
     fn interpolate<const N: usize, const N2: usize>(&mut self, input: [f64; N]) -> [f64; N2] {
+        const { assert!(N2 == 2 * N && M > K + N - 1) };
         let mut out = [0.0; N2];
-        for (x, pair) in input.into_iter().zip(out.as_chunks_mut::<2>().0) {
-            *pair = self.process(x);
+        let pairs = out.as_chunks_mut::<2>().0;
+        if N == 1 {
+            // Each window is read before its push is written.
+            for (x, pair) in input.into_iter().zip(pairs) {
+                let w = self.history.pending(x);
+                *pair = [pending_sum(&self.taps, &w), w.near[K - 1]];
+                let (count, moving) = (w.count, w.moving);
+                self.history.write(count, x, moving);
+            }
+        } else {
+            // All pushes are written first, then every window is read.
+            for x in input {
+                self.history.push(x);
+            }
+            for (i, pair) in pairs.iter_mut().enumerate() {
+                let w = self.history.window(N - 1 - i);
+                *pair = [written_sum(&self.taps, w), w.0[K - 1]];
+            }
         }
         out
     }
@@ -279,7 +364,7 @@ struct DownStage<const K: usize, const M: usize> {
     /// The pair member the symmetric branch reads (the second with `LATE`).
     branch: SymmetricWindow<K, M>,
     /// The other pair member, for the centre tap: a ring written twice at the same slots as the branch's
-    /// `near` ring, so that until a write, the slot it goes to plus j holds lag j for j = 1 .. M.
+    /// `near` ring, so that the newest sample's slot plus j holds lag j, for j below M.
     centre: [[f64; M]; 2],
 }
 
@@ -293,34 +378,59 @@ impl<const K: usize, const M: usize> DownStage<K, M> {
     }
 
     #[inline(always)]
-    fn process<const LATE: bool>(&mut self, [first, second]: [f64; 2]) -> f64 {
-        // The centre tap sits 2K - 1 input samples back: with the output at v[2m] that is v[2m - 2K + 1], the
-        // second member of the pair K back; with the output at v[2m + 1] it is v[2m + 2 - 2K], the first member
-        // of the pair K - 1 back.
-        let (b, c, centre_lag) = if LATE {
-            (second, first, K - 1)
-        } else {
-            (first, second, K)
-        };
-        let slot = self.branch.push(b);
+    fn write_centre(&mut self, count: usize, c: f64) {
+        let slot = SymmetricWindow::<K, M>::slot(count);
         let centre = self.centre.as_flattened_mut();
-        // Read the centre tap before the new member goes in (K is at most M).
-        let delayed = centre[slot + centre_lag];
         centre[slot] = c;
         centre[slot + M] = c;
-        let (near, far) = self.branch.halves();
-        symmetric_dot(&self.taps, near, far) + 0.5 * delayed
     }
 
-    /// Each pair of inputs in turn becomes one output: `N` is twice `H`.
+    /// A block of N inputs in time order (N / 2 pairs) becomes H = N / 2 outputs.
     #[inline(always)]
     fn decimate<const N: usize, const H: usize, const LATE: bool>(
         &mut self,
         input: [f64; N],
     ) -> [f64; H] {
+        const { assert!(N == 2 * H && M > K + H - 1) };
+        // The centre tap sits 2K - 1 input samples back: with the output at v[2m] that is v[2m - 2K + 1], the
+        // second member of the pair K back; with the output at v[2m + 1] it is v[2m + 2 - 2K], the first member
+        // of the pair K - 1 back.
+        let centre_lag = if LATE { K - 1 } else { K };
+        let split = |[first, second]: [f64; 2]| {
+            if LATE {
+                (second, first)
+            } else {
+                (first, second)
+            }
+        };
+        let pairs = input.as_chunks::<2>().0;
         let mut out = [0.0; H];
-        for (pair, y) in input.as_chunks::<2>().0.iter().zip(out.iter_mut()) {
-            *y = self.process::<LATE>(*pair);
+        if H == 1 {
+            // Each window is read before its push is written; the centre ring's slot for the push plus j holds
+            // lag j until then.
+            for (&pair, y) in pairs.iter().zip(out.iter_mut()) {
+                let (b, c) = split(pair);
+                let w = self.branch.pending(b);
+                let slot = SymmetricWindow::<K, M>::slot(w.count);
+                let delayed = self.centre.as_flattened()[slot + centre_lag];
+                *y = pending_sum(&self.taps, &w) + 0.5 * delayed;
+                let (count, moving) = (w.count, w.moving);
+                self.branch.write(count, b, moving);
+                self.write_centre(count, c);
+            }
+        } else {
+            // All pushes are written first, then every window is read.
+            for &pair in pairs {
+                let (b, c) = split(pair);
+                self.branch.push(b);
+                self.write_centre(self.branch.count, c);
+            }
+            let slot = SymmetricWindow::<K, M>::slot(self.branch.count);
+            for (i, y) in out.iter_mut().enumerate() {
+                let back = H - 1 - i;
+                let delayed = self.centre.as_flattened()[slot + back + centre_lag];
+                *y = written_sum(&self.taps, self.branch.window(back)) + 0.5 * delayed;
+            }
         }
         out
     }
@@ -761,6 +871,106 @@ mod tests {
         assert_eq!(got, [1, 48, 55, 57, 58]);
         for q in Quality::ALL {
             assert_eq!(decimator_memory(q), latency(q) + 1, "{q:?}");
+        }
+    }
+
+    /// One stage's symmetric branch evaluated straight from its definition over a plain history (lags 0 ..
+    /// 2K - 1 of `x`, newest last): sum_j h_j (x[m - j] + x[m - 2K + 1 + j]), tap j into partial sum j mod 4,
+    /// combined as (s0 + s2) + (s1 + s3): the order the module documents, so the result must match to the bit.
+    fn direct_sum(taps: &[f64], x: &[f64]) -> f64 {
+        let k = taps.len();
+        let m = x.len() - 1;
+        let mut s = [0.0f64; 4];
+        for (j, t) in taps.iter().enumerate() {
+            s[j % 4] += t * (x[m - j] + x[m + 1 + j - 2 * k]);
+        }
+        (s[0] + s[2]) + (s[1] + s[3])
+    }
+
+    /// The whole cascade evaluated directly from the filter definitions (half-band polyphase form, Vaidyanathan
+    /// 1993): each stage keeps its full input history in a vector, zeros before the start. The interpolator
+    /// gives (branch, x[m - K + 1]) for each input x[m]; the decimator gives branch(v[2m + late]) + v[centre] / 2
+    /// for each pair. The rings, the reads ahead of the writes and the block-wise reads must reproduce it to the
+    /// bit at every quality, for long enough that every ring wraps many times.
+    #[test]
+    fn cascade_matches_the_direct_filters_to_the_bit() {
+        let taps = |s: usize, gain: f64| -> Vec<f64> {
+            let beta = STAGES[s].beta;
+            match s {
+                0 => halfband_taps::<K1>(beta, gain).to_vec(),
+                1 => halfband_taps::<K2>(beta, gain).to_vec(),
+                2 => halfband_taps::<K3>(beta, gain).to_vec(),
+                _ => halfband_taps::<K4>(beta, gain).to_vec(),
+            }
+        };
+        let mut state = 0x9e37_79b9_7f4a_7c15u64;
+        let mut noise = move || {
+            state ^= state << 13;
+            state ^= state >> 7;
+            state ^= state << 17;
+            (state >> 11) as f64 / (1u64 << 53) as f64 - 0.5
+        };
+        for q in Quality::ALL {
+            let (f, stages) = (q.factor(), q.stages());
+            let late = late_picks(q);
+            let mut up = Upsampler::new(q);
+            let mut down = Downsampler::new(q);
+            // Direct histories: per up stage its inputs; per down stage its branch and centre members.
+            let pad = |v: &mut Vec<f64>| v.extend(std::iter::repeat_n(0.0, 2 * K1));
+            let mut up_hist: Vec<Vec<f64>> = vec![Vec::new(); stages];
+            let mut branch_hist: Vec<Vec<f64>> = vec![Vec::new(); stages];
+            let mut centre_hist: Vec<Vec<f64>> = vec![Vec::new(); stages];
+            for v in up_hist
+                .iter_mut()
+                .chain(&mut branch_hist)
+                .chain(&mut centre_hist)
+            {
+                pad(v);
+            }
+            let mut high = vec![0.0; f];
+            for n in 0..700 {
+                let x = noise();
+                up.process(x, &mut high);
+                let mut block = vec![x];
+                for (s, hist) in up_hist.iter_mut().enumerate() {
+                    let h = taps(s, 2.0);
+                    let k = h.len();
+                    let mut next = Vec::new();
+                    for &v in &block {
+                        hist.push(v);
+                        next.push(direct_sum(&h, &hist[hist.len() - 2 * k..]));
+                        next.push(hist[hist.len() - k]);
+                    }
+                    block = next;
+                }
+                for (a, b) in high.iter().zip(&block) {
+                    assert_eq!(a.to_bits(), b.to_bits(), "{q:?} up, n = {n}");
+                }
+
+                let input: Vec<f64> = (0..f).map(|_| noise()).collect();
+                let y = down.process(&input);
+                let mut block = input;
+                for s in (0..stages).rev() {
+                    let h = taps(s, 1.0);
+                    let k = h.len();
+                    let (b_hist, c_hist) = (&mut branch_hist[s], &mut centre_hist[s]);
+                    let mut next = Vec::new();
+                    for pair in block.chunks_exact(2) {
+                        let (b, c) = if late[s] {
+                            (pair[1], pair[0])
+                        } else {
+                            (pair[0], pair[1])
+                        };
+                        b_hist.push(b);
+                        c_hist.push(c);
+                        let lag = if late[s] { k - 1 } else { k };
+                        let centre = c_hist[c_hist.len() - 1 - lag];
+                        next.push(direct_sum(&h, &b_hist[b_hist.len() - 2 * k..]) + 0.5 * centre);
+                    }
+                    block = next;
+                }
+                assert_eq!(y.to_bits(), block[0].to_bits(), "{q:?} down, n = {n}");
+            }
         }
     }
 }
