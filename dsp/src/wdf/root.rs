@@ -13,20 +13,18 @@ pub enum Terminal {
 /// filter adaptors for arbitrary topologies and multiport linear elements", DAFx-15; K-method form of Werner et
 /// al., "Resolving wave digital filters with multiple/multiport nonlinearities", DAFx-15). Each subtree is a
 /// Thevenin edge (b_e, R_e) between two nodes; each nonlinear port draws current i_p from its + terminal. Nodal
-/// analysis at set-up gives the port voltages v = E b + K i + offset and the node voltages for the down pass.
+/// analysis at set-up gives the node voltages x = X_b b + X_i i, hence the port voltages v = p + K i with the
+/// open-circuit part p = D X_b b + offset (D: each port's terminal nodes), and the waves for the down pass.
 #[derive(Clone, Debug)]
 pub struct RTypeRoot<const N: usize, const E: usize, const P: usize> {
     edges: [(usize, usize); E],
     ports: [(Terminal, Terminal); P],
-    /// d(port voltage) / d(edge wave), E in the K-method.
-    pub port_from_wave: [[f64; E]; P],
     /// d(port voltage) / d(port current), K in the K-method.
     pub port_from_current: [[f64; P]; P],
     /// Port voltage contributed by fixed terminals.
     pub port_offset: [f64; P],
-    node_from_wave: [[f64; E]; N],
-    node_from_current: [[f64; P]; N],
-    /// The same matrices stored by columns for the per-sample products (each column scales one input).
+    /// Node voltages per unit edge wave and per unit port current, by columns (each column scales one input
+    /// in the per-sample products).
     node_wave_columns: [[f64; N]; E],
     node_current_columns: [[f64; N]; P],
     /// Each edge's (+, -) node as an index into `Extended` node voltages (ground at index N, always 0 V).
@@ -42,11 +40,8 @@ impl<const N: usize, const E: usize, const P: usize> RTypeRoot<N, E, P> {
         RTypeRoot {
             edges,
             ports,
-            port_from_wave: [[0.0; E]; P],
             port_from_current: [[0.0; P]; P],
             port_offset: [0.0; P],
-            node_from_wave: [[0.0; E]; N],
-            node_from_current: [[0.0; P]; N],
             port_slots: ports.map(|(plus, minus)| {
                 let slot = |terminal: Terminal| match terminal {
                     Terminal::Node(k) => k - 1,
@@ -89,7 +84,7 @@ impl<const N: usize, const E: usize, const P: usize> RTypeRoot<N, E, P> {
                 if minus > 0 {
                     sum -= inverse[n][minus - 1];
                 }
-                self.node_from_wave[n][e] = sum * conductance;
+                self.node_wave_columns[e][n] = sum * conductance;
             }
         }
         // Node voltages per unit port current: drawn from the + node, returned to the - node.
@@ -103,41 +98,26 @@ impl<const N: usize, const E: usize, const P: usize> RTypeRoot<N, E, P> {
                 if let Terminal::Node(k) = minus {
                     sum += inverse[n][k - 1];
                 }
-                self.node_from_current[n][p] = sum;
+                self.node_current_columns[p][n] = sum;
             }
         }
         for p in 0..P {
             let (plus, minus) = self.ports[p];
             let mut offset = 0.0;
-            let mut wave = [0.0; E];
             let mut current = [0.0; P];
             for (terminal, sign) in [(plus, 1.0), (minus, -1.0)] {
                 match terminal {
                     Terminal::Ground => {}
                     Terminal::Fixed(v) => offset += sign * v,
                     Terminal::Node(k) => {
-                        for e in 0..E {
-                            wave[e] += sign * self.node_from_wave[k - 1][e];
-                        }
                         for q in 0..P {
-                            current[q] += sign * self.node_from_current[k - 1][q];
+                            current[q] += sign * self.node_current_columns[q][k - 1];
                         }
                     }
                 }
             }
             self.port_offset[p] = offset;
-            self.port_from_wave[p] = wave;
             self.port_from_current[p] = current;
-        }
-        for e in 0..E {
-            for n in 0..N {
-                self.node_wave_columns[e][n] = self.node_from_wave[n][e];
-            }
-        }
-        for p in 0..P {
-            for n in 0..N {
-                self.node_current_columns[p][n] = self.node_from_current[n][p];
-            }
         }
     }
 
