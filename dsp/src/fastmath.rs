@@ -57,34 +57,6 @@ pub fn ln(x: f64) -> f64 {
     series + exponent as f64 * LN_2
 }
 
-/// ln(1 + u) for u >= 0.
-#[inline(always)]
-pub fn ln_1p(u: f64) -> f64 {
-    if u < 1e-4 {
-        u * (1.0 - u * (0.5 - u * (1.0 / 3.0 - u * 0.25)))
-    } else {
-        ln(1.0 + u)
-    }
-}
-
-/// x^y for x > 0.
-#[inline(always)]
-pub fn powf(x: f64, y: f64) -> f64 {
-    exp(y * ln(x))
-}
-
-/// softplus(x) = ln(1 + e^x) and the logistic function 1/(1 + e^-x), sharing one exponential.
-#[inline(always)]
-pub fn softplus_logistic(x: f64) -> (f64, f64) {
-    let e = exp(-x.abs());
-    let sp = ln_1p(e);
-    if x > 0.0 {
-        (x + sp, 1.0 / (1.0 + e))
-    } else {
-        (sp, e / (1.0 + e))
-    }
-}
-
 /// (sinh x, cosh x).
 #[inline(always)]
 pub fn sinh_cosh(x: f64) -> (f64, f64) {
@@ -136,23 +108,6 @@ pub fn prepare_tables() {
 /// below 1e-8 in L, checked against the standard library in the tests below); exact limits outside it.
 #[inline(always)]
 pub fn ln_softplus(z: f64) -> (f64, f64) {
-    ln_softplus_in(LnSoftplus::get(), z)
-}
-
-/// The `ln_softplus` table, fetched once for several lookups.
-#[derive(Clone, Copy)]
-pub struct LnSoftplus(&'static [[f64; 2]]);
-
-impl LnSoftplus {
-    #[inline(always)]
-    pub fn get() -> LnSoftplus {
-        LnSoftplus(ln_softplus_table())
-    }
-}
-
-/// `ln_softplus` with the table already fetched.
-#[inline(always)]
-pub fn ln_softplus_in(table: LnSoftplus, z: f64) -> (f64, f64) {
     let pos = (z - LSP_START) * LSP_PER_UNIT;
     if pos.is_nan() || pos <= 0.0 {
         // ln(ln(1 + e^z)) = z + ln(1 - e^z/2 + ...) = z to double precision below -40.
@@ -162,7 +117,7 @@ pub fn ln_softplus_in(table: LnSoftplus, z: f64) -> (f64, f64) {
         // softplus z = z + e^-z: ln z to double precision above 40.
         return (ln(z), 1.0 / z);
     }
-    let table = table.0;
+    let table = ln_softplus_table();
     // floor(pos) by the round-to-nearest shift trick on pos - 1/2 (pos is in (0, LSP_POINTS - 1) here).
     const SHIFT: f64 = 6_755_399_441_055_744.0;
     let idx = (((pos - 0.5) + SHIFT).to_bits() as u32 as usize).min(LSP_POINTS - 2);
@@ -203,21 +158,7 @@ mod tests {
             );
             x *= 1.37;
         }
-        for &u in &[0.0, 1e-9, 1e-5, 9e-5, 1e-3, 0.5, 1.0] {
-            assert!(
-                (ln_1p(u) - u.ln_1p()).abs() <= 1e-14 + 1e-12 * u.ln_1p(),
-                "ln_1p {u}"
-            );
-        }
         for &x in &[-40.0, -3.0, -1e-4, 0.0, 1e-4, 2.0, 30.0] {
-            let (sp, lg) = softplus_logistic(x);
-            let ref_sp = if x > 0.0 {
-                x + (-x).exp().ln_1p()
-            } else {
-                x.exp().ln_1p()
-            };
-            assert!(rel(sp, ref_sp) < 1e-10, "softplus {x}");
-            assert!(rel(lg, 1.0 / (1.0 + (-x).exp())) < 1e-10, "logistic {x}");
             let (s, c) = sinh_cosh(x / 2.0);
             assert!((s - (x / 2.0).sinh()).abs() <= 1e-10 * (x / 2.0).sinh().abs().max(1e-12));
             assert!(rel(c, (x / 2.0).cosh()) < 1e-10);
