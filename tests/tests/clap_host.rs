@@ -475,28 +475,7 @@ impl Instance {
             latency: 0,
             constant_mask: 0,
         };
-        let events = Events { list: events };
-        let in_events = clap_input_events {
-            ctx: &events as *const Events as *mut c_void,
-            size: Some(events_size),
-            get: Some(events_get),
-        };
-        let out_events = clap_output_events {
-            ctx: ptr::null_mut(),
-            try_push: Some(out_push),
-        };
-        let process = clap_process {
-            steady_time: self.steady_time,
-            frames_count: frames as u32,
-            transport: ptr::null(),
-            audio_inputs: &audio_in,
-            audio_outputs: &mut audio_out,
-            audio_inputs_count: 1,
-            audio_outputs_count: 1,
-            in_events: &in_events,
-            out_events: &out_events,
-        };
-        self.call_process(&process);
+        self.send_block(frames, &audio_in, &mut audio_out, events);
     }
 
     /// Process one block in place: the host hands the same channel buffers as input and output, as many
@@ -512,7 +491,18 @@ impl Instance {
             constant_mask: 0,
         };
         let mut audio_out = audio_in;
-        let events = Events { list: Vec::new() };
+        self.send_block(frames, &audio_in, &mut audio_out, Vec::new());
+    }
+
+    /// Hand the plugin one block of `frames` frames with the given buffers and parameter events.
+    fn send_block(
+        &mut self,
+        frames: usize,
+        audio_in: &clap_audio_buffer,
+        audio_out: &mut clap_audio_buffer,
+        events: Vec<clap_event_param_value>,
+    ) {
+        let events = Events { list: events };
         let in_events = clap_input_events {
             ctx: &events as *const Events as *mut c_void,
             size: Some(events_size),
@@ -526,8 +516,8 @@ impl Instance {
             steady_time: self.steady_time,
             frames_count: frames as u32,
             transport: ptr::null(),
-            audio_inputs: &audio_in,
-            audio_outputs: &mut audio_out,
+            audio_inputs: audio_in,
+            audio_outputs: audio_out,
             audio_inputs_count: 1,
             audio_outputs_count: 1,
             in_events: &in_events,
