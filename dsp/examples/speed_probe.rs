@@ -47,6 +47,6 @@ fn main() {
         }
         let el = t0.elapsed().as_secs_f64();
         let m = e.meters();
-        println!("{q:?}: {:.1} ns/sample, RT x{:.1}, iters/step {:.2}, failures {}, chord {:.3}, maxpeak {:.2} {:.2} acc {acc:.3}", el*1e9/n as f64, (n as f64/48000.0)/el, m.newton_iterations as f64/m.samples as f64, m.newton_failures, m.chord_steps as f64/m.samples as f64, m.clamp_peak_positive, m.clamp_peak_negative);
+        println!("{q:?}: {:.1} ns/sample, RT x{:.1}, iters/step {:.2}, failures {}, maxpeak {:.2} {:.2} acc {acc:.3}", el*1e9/n as f64, (n as f64/48000.0)/el, m.newton_iterations as f64/m.samples as f64, m.newton_failures, m.clamp_peak_positive, m.clamp_peak_negative);
     }
 }

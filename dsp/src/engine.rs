@@ -90,8 +90,6 @@ pub struct Meters {
     pub follower_plate_current_min: f64,
     pub newton_iterations: u64,
     pub newton_failures: u64,
-    /// Samples solved by a chord step (the previous LU factors reused).
-    pub chord_steps: u64,
     /// Internal sample period (s).
     pub period: f64,
 }
@@ -167,7 +165,6 @@ impl Meters {
             smaller(self.follower_plate_current_min, p.follower_plate_current);
         self.newton_iterations += report.iterations as u64;
         self.newton_failures += u64::from(!report.converged);
-        self.chord_steps += u64::from(report.chord);
     }
 }
 
@@ -607,7 +604,6 @@ mod tests {
                     m.follower_plate_current_min.min(p.follower_plate_current);
                 m.newton_iterations += u64::from(report.iterations);
                 m.newton_failures += u64::from(!report.converged);
-                m.chord_steps += u64::from(report.chord);
                 probes += 1;
             }
         }

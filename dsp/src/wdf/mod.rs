@@ -6,7 +6,7 @@ mod elements;
 pub mod root;
 
 pub use elements::{Capacitor, Parallel, ResistiveVoltageSource, Resistor, Series, WaveElement};
-pub use root::{RTypeRoot, Terminal};
+pub use root::RTypeRoot;
 
 /// Port resistance that stands for an open circuit (ohm): a capacitor at DC.
 pub const OPEN_RESISTANCE: f64 = 1e15;
