@@ -445,7 +445,7 @@ impl Triode {
     }
 
     /// Plate and grid currents with their derivatives.
-    #[inline]
+    #[inline(always)]
     pub fn currents(&self, vpk: f64, vgk: f64) -> TriodeCurrents {
         let (grid, grid_dvgk) = Self::grid_current_in(self.grid, vgk);
         let Some((a, da)) = self.power.lookup(vpk) else {

@@ -459,7 +459,7 @@ impl ZenerPair {
     /// Pair voltage and current with their s-derivatives at s, and the negative-clamp part's voltage, from
     /// the combined table (one lookup); the positive part's voltage is left at zero (see `split`).
     /// A NaN s reads as the table's lower end, and |s| is held at 700 at most, so the results stay finite.
-    #[inline]
+    #[inline(always)]
     pub fn port(&self, s: f64) -> PairPoint {
         match &self.combined {
             Some(table) if s.abs() < TABLE_HALF_SPAN => {
