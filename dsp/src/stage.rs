@@ -250,57 +250,104 @@ impl StageDevices {
     }
 
     /// The Newton step: solves J step = -r by Gaussian elimination in the band, written out (no row
-    /// exchanges: each pivot is a node's conductance to everything, positive for these devices); a dense
-    /// pivoted solve takes over if a pivot is not positive.
+    /// exchanges: each pivot is a node's conductance to everything, positive for these devices). Rows are
+    /// combined by cross-multiplying instead of dividing by each pivot, so the five divisions wait for no
+    /// one another; a dense pivoted solve takes over if a pivot is not positive.
     #[inline(always)]
     fn newton_step(&self, e: &DeviceEval, r: &[f64; NODES]) -> [f64; UNKNOWNS] {
         let j = self.jacobian(e);
-        // Forward: column 0 from rows 1 and 2, then each column from the row below it.
-        let inv0 = 1.0 / j[0][0];
-        let f10 = j[1][0] * inv0;
-        let f20 = j[2][0] * inv0;
-        let y0 = -r[0];
-        let p1 = j[1][1] - f10 * j[0][1];
-        let y1 = -r[1] - f10 * y0;
-        let j21 = j[2][1] - f20 * j[0][1];
-        let inv1 = 1.0 / p1;
-        let f21 = j21 * inv1;
-        let p2 = j[2][2] - f21 * j[1][2];
-        let y2 = -r[2] - f20 * y0 - f21 * y1;
-        let inv2 = 1.0 / p2;
-        let f32 = j[3][2] * inv2;
-        let p3 = j[3][3] - f32 * j[2][3];
-        let y3 = -r[3] - f32 * y2;
-        let inv3 = 1.0 / p3;
-        let f43 = j[4][3] * inv3;
-        let p4 = j[4][4] - f43 * j[3][4];
-        let y4 = -r[4] - f43 * y3;
+        let [[a00, a01, ..], [a10, a11, a12, ..], [a20, a21, a22, a23, _], [_, _, a32, a33, a34], [.., a43, a44]] =
+            j;
+        let (y0, y1, y2, y3, y4) = (-r[0], -r[1], -r[2], -r[3], -r[4]);
+        // Column 0 out of rows 1 and 2.
+        let b11 = a00 * a11 - a10 * a01;
+        let b12 = a00 * a12;
+        let z1 = a00 * y1 - a10 * y0;
+        let b21 = a00 * a21 - a20 * a01;
+        let b22 = a00 * a22;
+        let b23 = a00 * a23;
+        let z2 = a00 * y2 - a20 * y0;
+        // Column 1 out of row 2, column 2 out of row 3, column 3 out of row 4.
+        let c22 = b11 * b22 - b21 * b12;
+        let c23 = b11 * b23;
+        let w2 = b11 * z2 - b21 * z1;
+        let d33 = c22 * a33 - a32 * c23;
+        let d34 = c22 * a34;
+        let w3 = c22 * y3 - a32 * w2;
+        let e44 = d33 * a44 - a43 * d34;
+        let w4 = d33 * y4 - a43 * w3;
         // Back substitution.
-        let x4 = y4 / p4;
-        let x3 = (y3 - j[3][4] * x4) * inv3;
-        let x2 = (y2 - j[2][3] * x3) * inv2;
-        let x1 = (y1 - j[1][2] * x2) * inv1;
-        let x0 = (y0 - j[0][1] * x1) * inv0;
+        let (i0, i1, i2, i3, i4) = (1.0 / a00, 1.0 / b11, 1.0 / c22, 1.0 / d33, 1.0 / e44);
+        let x4 = w4 * i4;
+        let x3 = (w3 - d34 * x4) * i3;
+        let x2 = (w2 - c23 * x3) * i2;
+        let x1 = (z1 - b12 * x2) * i1;
+        let x0 = (y0 - a01 * x1) * i0;
         // Written so that a NaN fails the test.
-        if j[0][0] > 0.0 && p1 > 0.0 && p2 > 0.0 && p3 > 0.0 && p4 > 0.0 {
+        if a00 > 0.0 && b11 > 0.0 && c22 > 0.0 && d33 > 0.0 && e44 > 0.0 && e44 < f64::INFINITY {
             return [x0, x1, x2, x3, x4];
         }
         let mut dense = j;
-        let mut step = [-r[0], -r[1], -r[2], -r[3], -r[4]];
+        let mut step = [y0, y1, y2, y3, y4];
         solver::solve_in_place(&mut dense, &mut step);
         step
     }
 
-    /// Damped Newton on the node equations from the starting point in `x`: each step is scaled so that no
-    /// device port moves further than its limit (a trust region, as SPICE limits junction steps), and the
-    /// iteration stops once every port's change is within its tolerance. Leaves the solution in `x` and its
-    /// device currents (first-order corrected through the last step) in `eval`.
-    #[inline]
+    /// Newton on the node equations from the starting point in `x`, stopping once every device port's change
+    /// is within its tolerance (most samples: the first step from the predictor). Leaves the solution in `x`
+    /// and its device currents (first-order corrected through the last step) in `eval`.
+    #[inline(always)]
     fn solve(
-        &mut self,
+        &self,
         norton: &[f64; EDGES],
         x: &mut [f64; UNKNOWNS],
         eval: &mut DeviceEval,
+        max_iterations: u32,
+    ) -> NewtonReport {
+        self.evaluate(x, eval);
+        let r = self.residual(norton, x, eval);
+        let step = self.newton_step(eval, &r);
+        if self.accept(x, eval, &step) {
+            return NewtonReport {
+                iterations: 1,
+                converged: true,
+            };
+        }
+        self.damped_newton(norton, x, eval, step, max_iterations)
+    }
+
+    /// Take `step` and carry the device currents through it if every port's change is within its tolerance.
+    #[inline(always)]
+    fn accept(
+        &self,
+        x: &mut [f64; UNKNOWNS],
+        eval: &mut DeviceEval,
+        step: &[f64; UNKNOWNS],
+    ) -> bool {
+        let ports = port_changes(step);
+        let mut small = true;
+        for (s, tolerance) in ports.iter().zip(&self.tolerance) {
+            // Written so that a NaN fails the test.
+            small &= s.abs() <= *tolerance;
+        }
+        if small {
+            for (x, s) in x.iter_mut().zip(step) {
+                *x += s;
+            }
+            eval.carry(&ports);
+        }
+        small
+    }
+
+    /// The rest of a solve whose first `step` was too large to accept: damped Newton, each step scaled so that
+    /// no device port moves further than its limit (a trust region, as SPICE limits junction steps).
+    #[inline(never)]
+    fn damped_newton(
+        &self,
+        norton: &[f64; EDGES],
+        x: &mut [f64; UNKNOWNS],
+        eval: &mut DeviceEval,
+        mut step: [f64; UNKNOWNS],
         max_iterations: u32,
     ) -> NewtonReport {
         let mut report = NewtonReport {
@@ -314,24 +361,7 @@ impl StageDevices {
         let mut last_step = [0.0f64; PORTS];
         let mut last_limited = [false; PORTS];
         loop {
-            self.evaluate(x, eval);
-            let r = self.residual(norton, x, eval);
-            let mut step = self.newton_step(eval, &r);
             let ports = port_changes(&step);
-            let mut small = true;
-            for (s, tolerance) in ports.iter().zip(&self.tolerance) {
-                // Written so that a NaN fails the test.
-                small &= s.abs() <= *tolerance;
-            }
-            if small {
-                for (x, s) in x.iter_mut().zip(&step) {
-                    *x += s;
-                }
-                eval.carry(&ports);
-                report.converged = true;
-                return report;
-            }
-            // A larger step: scaled down so that no port moves past its limit.
             let mut scale = 1.0f64;
             for n in 0..PORTS {
                 let s = ports[n];
@@ -353,15 +383,21 @@ impl StageDevices {
                 finite &= last_step[n].abs() < f64::INFINITY;
             }
             if finite {
-                for (x, s) in x.iter_mut().zip(step.iter_mut()) {
-                    *s *= scale;
-                    *x += *s;
+                for (x, s) in x.iter_mut().zip(&step) {
+                    *x += scale * s;
                 }
             }
             if report.iterations >= max_iterations {
                 break;
             }
             report.iterations += 1;
+            self.evaluate(x, eval);
+            let r = self.residual(norton, x, eval);
+            step = self.newton_step(eval, &r);
+            if self.accept(x, eval, &step) {
+                report.converged = true;
+                return report;
+            }
         }
         self.evaluate(x, eval);
         report
