@@ -1,6 +1,6 @@
 //! CPU cost of the plugin's processor with instant comparison on (all four positions running), at the default
 //! quality: prints the share of one core for a mono and a stereo 48 kHz stream.
-//! Run: cargo run --release -p breakdown --example cpu [seconds]
+//! Run: cargo run --release -p breakdown --example cpu [seconds] [case]
 
 use breakdown::runtime::{Controls, Processor, Worker};
 use breakdown::shared::Shared;
@@ -12,6 +12,8 @@ fn main() {
         .nth(1)
         .and_then(|s| s.parse().ok())
         .unwrap_or(5.0);
+    // Optional second argument: run only that case (0-3), e.g. under a profiler.
+    let only: Option<usize> = std::env::args().nth(2).and_then(|s| s.parse().ok());
     let rate = 48_000.0;
     let block = 256;
     let n = (rate * seconds) as usize;
@@ -30,7 +32,13 @@ fn main() {
             2,
             false,
         ),
-    ] {
+        ("stereo, heard + compare-with only", 2, 2, false),
+    ]
+    .into_iter()
+    .enumerate()
+    .filter(|(case, _)| only.is_none_or(|k| k == *case))
+    .map(|(_, c)| c)
+    {
         let controls = Controls {
             run_all,
             ..Controls::default()

@@ -9,7 +9,7 @@ use crate::shared::Shared;
 use atomic_float::AtomicF64;
 use breakdown_dsp::circuit::{SwitchPosition, ZenerSpec};
 use breakdown_dsp::engine::CLAMPED_CURRENT;
-use breakdown_dsp::{Circuit, Engine, Quality, Settings};
+use breakdown_dsp::{Circuit, Engine, Probe, Quality, Settings};
 use std::ptr;
 use std::sync::atomic::{AtomicPtr, AtomicU32, AtomicUsize, Ordering};
 use std::sync::{Arc, Mutex};
@@ -124,8 +124,10 @@ impl Built {
             level: level.clamp(0.0, 1.0),
             position: 0,
         };
-        let engine = Engine::new(&circuit, sample_rate, spec.quality, settings)
+        let mut engine = Engine::new(&circuit, sample_rate, spec.quality, settings)
             .map_err(|e| e.to_string())?;
+        // The processor reads the listening output and the clamp node only: decimate just those two.
+        engine.set_active_probes(&[Probe::Listen, Probe::Clamp]);
         let mut engines = Vec::with_capacity(models);
         for _ in 1..models {
             engines.push(engine.clone());
