@@ -284,7 +284,13 @@ impl StageDevices {
         let x1 = (z1 - b12 * x2) * i1;
         let x0 = (y0 - a01 * x1) * i0;
         // Written so that a NaN fails the test.
-        if a00 > 0.0 && b11 > 0.0 && c22 > 0.0 && d33 > 0.0 && e44 > 0.0 && e44 < f64::INFINITY {
+        if (a00 > 0.0)
+            & (b11 > 0.0)
+            & (c22 > 0.0)
+            & (d33 > 0.0)
+            & (e44 > 0.0)
+            & (e44 < f64::INFINITY)
+        {
             return [x0, x1, x2, x3, x4];
         }
         let mut dense = j;
