@@ -656,14 +656,7 @@ impl Stage {
             {
                 let x0 = *x;
                 let change = 2.0 * x0 - 3.0 * x1 + x2;
-                let change = if change > *limit {
-                    *limit
-                } else if change < -limit {
-                    -limit
-                } else {
-                    change
-                };
-                *x = x0 + change;
+                *x = x0 + change.clamp(-limit, *limit);
             }
         }
         self.older_unknowns = self.previous_unknowns;
