@@ -12,7 +12,6 @@ pub struct NewtonReport {
 }
 
 /// Solve the small dense system `a x = r` in place by Gaussian elimination with partial pivoting.
-#[inline(always)]
 pub fn solve_in_place<const P: usize>(a: &mut [[f64; P]; P], r: &mut [f64; P]) {
     for col in 0..P {
         let mut pivot = col;
