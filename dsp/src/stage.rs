@@ -449,7 +449,6 @@ pub struct Stage {
     unknowns: [f64; UNKNOWNS],
     previous_unknowns: [f64; UNKNOWNS],
     older_unknowns: [f64; UNKNOWNS],
-    eval: DeviceEval,
     last_report: NewtonReport,
     probe: StageProbe,
 }
@@ -519,7 +518,6 @@ impl Stage {
             unknowns: [0.0; UNKNOWNS],
             previous_unknowns: [0.0; UNKNOWNS],
             older_unknowns: [0.0; UNKNOWNS],
-            eval: DeviceEval::default(),
             last_report: NewtonReport::default(),
             probe: StageProbe::default(),
         };
@@ -644,6 +642,7 @@ impl Stage {
         ];
         let norton = self.root.norton_currents(&b);
         let last_solution = self.unknowns;
+        let mut eval = DeviceEval::default();
         // Predictor: quadratic extrapolation through the last three solutions (they move smoothly), kept
         // within a quarter of each unknown's step limit of the last solution.
         if max_iterations == MAX_ITERATIONS {
@@ -663,13 +662,13 @@ impl Stage {
         self.previous_unknowns = last_solution;
         self.last_report =
             self.devices
-                .solve(&norton, &mut self.unknowns, &mut self.eval, max_iterations);
+                .solve(&norton, &mut self.unknowns, &mut eval, max_iterations);
         if !self.last_report.converged {
             // Start again from the last solution without the prediction, with a larger budget.
             self.unknowns = last_solution;
             let retry =
                 self.devices
-                    .solve(&norton, &mut self.unknowns, &mut self.eval, DC_ITERATIONS);
+                    .solve(&norton, &mut self.unknowns, &mut eval, DC_ITERATIONS);
             self.last_report = solver::NewtonReport {
                 iterations: self.last_report.iterations + retry.iterations,
                 converged: retry.converged,
@@ -677,9 +676,9 @@ impl Stage {
         }
         if !self.unknowns.iter().all(|v| v.is_finite()) {
             self.unknowns = last_solution;
-            self.devices.evaluate(&last_solution, &mut self.eval);
+            self.devices.evaluate(&last_solution, &mut eval);
         }
-        let e = &self.eval;
+        let e = &eval;
         let x = &self.unknowns;
         let nodes = [
             x[GAIN_GRID],
