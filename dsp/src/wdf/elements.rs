@@ -37,14 +37,15 @@ impl Waves {
 #[derive(Clone, Debug)]
 pub struct Resistor {
     resistance: f64,
-    waves: Waves,
+    /// The last incident wave (the reflected one is always 0).
+    incident: f64,
 }
 
 impl Resistor {
     pub fn new(resistance: f64) -> Self {
         Resistor {
             resistance,
-            waves: Waves::default(),
+            incident: 0.0,
         }
     }
     pub fn set_resistance(&mut self, resistance: f64) {
@@ -57,20 +58,27 @@ impl WaveElement for Resistor {
         self.resistance
     }
     fn reflected(&mut self) -> f64 {
-        self.waves.b = 0.0;
         0.0
     }
     fn incident(&mut self, a: f64) {
-        self.waves.a = a;
+        self.incident = a;
     }
     fn voltage(&self) -> f64 {
-        self.waves.voltage()
+        Waves {
+            a: self.incident,
+            b: 0.0,
+        }
+        .voltage()
     }
     fn current(&self) -> f64 {
         if self.resistance == 0.0 {
             0.0
         } else {
-            self.waves.current(self.resistance)
+            Waves {
+                a: self.incident,
+                b: 0.0,
+            }
+            .current(self.resistance)
         }
     }
 }
@@ -80,8 +88,8 @@ impl WaveElement for Resistor {
 pub struct Capacitor {
     capacitance: f64,
     resistance: f64,
-    state: f64,
     open: bool,
+    /// The last waves; the incident one is the state (b[n] = a[n-1]).
     waves: Waves,
 }
 
@@ -91,7 +99,6 @@ impl Capacitor {
         Capacitor {
             capacitance,
             resistance: OPEN_RESISTANCE,
-            state: 0.0,
             open: true,
             waves: Waves::default(),
         }
@@ -113,7 +120,6 @@ impl Capacitor {
 
     /// Start from a charged state holding `volts` with no current.
     pub fn charge_to(&mut self, volts: f64) {
-        self.state = volts;
         self.waves = Waves { a: volts, b: volts };
     }
 }
@@ -123,12 +129,11 @@ impl WaveElement for Capacitor {
         self.resistance
     }
     fn reflected(&mut self) -> f64 {
-        self.waves.b = if self.open { 0.0 } else { self.state };
+        self.waves.b = if self.open { 0.0 } else { self.waves.a };
         self.waves.b
     }
     fn incident(&mut self, a: f64) {
         self.waves.a = a;
-        self.state = a;
     }
     fn voltage(&self) -> f64 {
         self.waves.voltage()
@@ -183,7 +188,6 @@ pub struct Series<A, B> {
     pub second: B,
     waves: Waves,
     reflected_first: f64,
-    reflected_second: f64,
     resistance: f64,
     first_share: f64,
 }
@@ -195,7 +199,6 @@ impl<A: WaveElement, B: WaveElement> Series<A, B> {
             second,
             waves: Waves::default(),
             reflected_first: 0.0,
-            reflected_second: 0.0,
             resistance: 0.0,
             first_share: 0.0,
         };
@@ -211,8 +214,7 @@ impl<A: WaveElement, B: WaveElement> WaveElement for Series<A, B> {
     #[inline]
     fn reflected(&mut self) -> f64 {
         self.reflected_first = self.first.reflected();
-        self.reflected_second = self.second.reflected();
-        self.waves.b = self.reflected_first + self.reflected_second;
+        self.waves.b = self.reflected_first + self.second.reflected();
         self.waves.b
     }
     #[inline]
