@@ -666,9 +666,9 @@ impl Stage {
         if !self.last_report.converged {
             // Start again from the last solution without the prediction, with a larger budget.
             self.unknowns = last_solution;
-            let retry =
-                self.devices
-                    .solve(&norton, &mut self.unknowns, &mut eval, DC_ITERATIONS);
+            let retry = self
+                .devices
+                .solve(&norton, &mut self.unknowns, &mut eval, DC_ITERATIONS);
             self.last_report = solver::NewtonReport {
                 iterations: self.last_report.iterations + retry.iterations,
                 converged: retry.converged,
