@@ -541,6 +541,13 @@ impl Stage {
         self.level_network.second.first.set_resistance(bottom);
     }
 
+    /// Give the root (and the node equations) the subtrees' current port resistances.
+    fn update_root(&mut self) {
+        let r = self.edge_resistances();
+        self.root.update(&r);
+        self.devices.conductance = *self.root.conductances();
+    }
+
     /// Refresh every subtree's cached coefficients and return the edge port resistances.
     fn edge_resistances(&mut self) -> [f64; EDGES] {
         self.cathode_network.refresh();
@@ -559,9 +566,7 @@ impl Stage {
     /// Turn the level pot (rotation 0..1); recomputes the root scattering, keeps every stored charge.
     pub fn set_level(&mut self, level: f64) {
         self.set_level_legs(level);
-        let r = self.edge_resistances();
-        self.root.update(&r);
-        self.devices.conductance = *self.root.conductances();
+        self.update_root();
     }
 
     /// Select the Zener pair of switch position `position` (clamped to the list).
@@ -598,9 +603,7 @@ impl Stage {
         self.grid_feed.volts = 0.0;
         self.cathode_network.second.discretise(None);
         self.coupling_feed.first.first.discretise(None);
-        let r = self.edge_resistances();
-        self.root.update(&r);
-        self.devices.conductance = *self.root.conductances();
+        self.update_root();
         // Grid at 0 V, cathode at 1.5 V, plate near half the supply, follower grid 1 V below its cathode, pair at rest.
         let half_supply = 0.5 * self.devices.supply_volts;
         self.unknowns = [0.0, 1.5, half_supply + 1.5, half_supply + 2.5, 0.0];
@@ -613,9 +616,7 @@ impl Stage {
         self.coupling_feed.first.first.discretise(Some(self.period));
         self.cathode_network.second.charge_to(cathode_volts);
         self.coupling_feed.first.first.charge_to(coupling_volts);
-        let r = self.edge_resistances();
-        self.root.update(&r);
-        self.devices.conductance = *self.root.conductances();
+        self.update_root();
         // One silent sample in transient mode to settle every wave on the new discretisation.
         self.step(DC_ITERATIONS);
         self.previous_unknowns = self.unknowns;
