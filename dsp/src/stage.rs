@@ -310,9 +310,7 @@ impl StageDevices {
         eval: &mut DeviceEval,
         max_iterations: u32,
     ) -> NewtonReport {
-        self.evaluate(x, eval);
-        let r = self.residual(norton, x, eval);
-        let step = self.newton_step(eval, &r);
+        let step = self.step_from(norton, x, eval);
         if self.accept(x, eval, &step) {
             return NewtonReport {
                 iterations: 1,
@@ -320,6 +318,19 @@ impl StageDevices {
             };
         }
         self.damped_newton(norton, x, eval, step, max_iterations)
+    }
+
+    /// The devices evaluated at `x` (into `eval`) and the full Newton step from there.
+    #[inline(always)]
+    fn step_from(
+        &self,
+        norton: &[f64; EDGES],
+        x: &[f64; UNKNOWNS],
+        eval: &mut DeviceEval,
+    ) -> [f64; UNKNOWNS] {
+        self.evaluate(x, eval);
+        let r = self.residual(norton, x, eval);
+        self.newton_step(eval, &r)
     }
 
     /// Take `step` and carry the device currents through it if every port's change is within its tolerance.
@@ -397,9 +408,7 @@ impl StageDevices {
                 break;
             }
             report.iterations += 1;
-            self.evaluate(x, eval);
-            let r = self.residual(norton, x, eval);
-            step = self.newton_step(eval, &r);
+            step = self.step_from(norton, x, eval);
             if self.accept(x, eval, &step) {
                 report.converged = true;
                 return report;
