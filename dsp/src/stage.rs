@@ -146,9 +146,9 @@ fn port_changes(step: &[f64; UNKNOWNS]) -> [f64; PORTS] {
 }
 
 impl StageDevices {
-    /// Evaluate the devices at the unknowns `x` into `out`.
+    /// The devices evaluated at the unknowns `x`.
     #[inline(always)]
-    fn evaluate(&self, x: &[f64; UNKNOWNS], out: &mut DeviceEval) {
+    fn evaluate(&self, x: &[f64; UNKNOWNS]) -> DeviceEval {
         let gain = self.gain_valve.currents(
             x[GAIN_PLATE] - x[GAIN_CATHODE],
             x[GAIN_GRID] - x[GAIN_CATHODE],
@@ -168,7 +168,7 @@ impl StageDevices {
         } else {
             pair.port(x[PAIR_S])
         };
-        *out = DeviceEval {
+        DeviceEval {
             gain_plate: gain.plate,
             gain_grid: gain.grid,
             follower_plate: follower.plate,
@@ -185,7 +185,7 @@ impl StageDevices {
             follower_grid_dvgk: follower.grid_dvgk,
             pair_volts_ds: point.volts_ds,
             pair_current_ds: point.current_ds,
-        };
+        }
     }
 
     /// Kirchhoff's current law at each node: the current leaving it into the subtrees (G_e v_e - G_e b_e, with
@@ -302,26 +302,28 @@ impl StageDevices {
 
     /// Newton on the node equations from the starting point in `x`, stopping once every device port's change
     /// is within its tolerance (most samples: the first step from the predictor). Leaves the solution in `x`
-    /// and its device currents (first-order corrected through the last step) in `eval`.
+    /// and returns its device currents (first-order corrected through the last step).
     #[inline(always)]
     fn solve(
         &self,
         norton: &[f64; EDGES],
         x: &mut [f64; UNKNOWNS],
-        eval: &mut DeviceEval,
         max_iterations: u32,
-    ) -> NewtonReport {
-        let step = self.step_from(norton, x, eval);
-        if self.accept(x, eval, &step) {
-            return NewtonReport {
+    ) -> (NewtonReport, DeviceEval) {
+        let mut eval = self.evaluate(x);
+        let step = self.newton_step(&eval, &self.residual(norton, x, &eval));
+        if self.accept(x, &mut eval, &step) {
+            let report = NewtonReport {
                 iterations: 1,
                 converged: true,
             };
+            return (report, eval);
         }
-        self.damped_newton(norton, x, eval, step, max_iterations)
+        let report = self.damped_newton(norton, x, &mut eval, step, max_iterations);
+        (report, eval)
     }
 
-    /// The devices evaluated at `x` (into `eval`) and the full Newton step from there.
+    /// The devices evaluated at `x` (into `eval`) and the full Newton step from there (damped iterations).
     #[inline(always)]
     fn step_from(
         &self,
@@ -329,7 +331,7 @@ impl StageDevices {
         x: &[f64; UNKNOWNS],
         eval: &mut DeviceEval,
     ) -> [f64; UNKNOWNS] {
-        self.evaluate(x, eval);
+        *eval = self.evaluate(x);
         let r = self.residual(norton, x, eval);
         self.newton_step(eval, &r)
     }
@@ -415,7 +417,7 @@ impl StageDevices {
                 return report;
             }
         }
-        self.evaluate(x, eval);
+        *eval = self.evaluate(x);
         report
     }
 }
@@ -653,7 +655,6 @@ impl Stage {
         ];
         let norton = self.root.norton_currents(&b);
         let last_solution = self.unknowns;
-        let mut eval = DeviceEval::default();
         // Predictor: quadratic extrapolation through the last three solutions (they move smoothly), kept
         // within PREDICTOR_LIMIT of the last solution.
         if max_iterations == MAX_ITERATIONS {
@@ -671,15 +672,15 @@ impl Stage {
         }
         self.older_unknowns = self.previous_unknowns;
         self.previous_unknowns = last_solution;
-        self.last_report =
-            self.devices
-                .solve(&norton, &mut self.unknowns, &mut eval, max_iterations);
+        let (report, mut eval) = self.devices.solve(&norton, &mut self.unknowns, max_iterations);
+        self.last_report = report;
         if !self.last_report.converged {
             // Start again from the last solution without the prediction, with a larger budget.
             self.unknowns = last_solution;
-            let retry = self
+            let (retry, retry_eval) = self
                 .devices
-                .solve(&norton, &mut self.unknowns, &mut eval, DC_ITERATIONS);
+                .solve(&norton, &mut self.unknowns, DC_ITERATIONS);
+            eval = retry_eval;
             self.last_report = solver::NewtonReport {
                 iterations: self.last_report.iterations + retry.iterations,
                 converged: retry.converged,
@@ -687,7 +688,7 @@ impl Stage {
         }
         if !self.unknowns.iter().all(|v| v.is_finite()) {
             self.unknowns = last_solution;
-            self.devices.evaluate(&last_solution, &mut eval);
+            eval = self.devices.evaluate(&last_solution);
         }
         let e = &eval;
         let x = &self.unknowns;
@@ -780,18 +781,15 @@ mod tests {
         for samples in [100, 400, 700, 900, 1300] {
             let (stage, norton, x) = driven_point(samples);
             let devices = &stage.devices;
-            let mut e = DeviceEval::default();
-            devices.evaluate(&x, &mut e);
+            let e = devices.evaluate(&x);
             let jacobian = devices.jacobian(&e);
             for col in 0..UNKNOWNS {
                 let h = 1e-6 * (1.0 + x[col].abs());
                 let (mut up, mut down) = (x, x);
                 up[col] += h;
                 down[col] -= h;
-                let mut e_up = DeviceEval::default();
-                let mut e_down = DeviceEval::default();
-                devices.evaluate(&up, &mut e_up);
-                devices.evaluate(&down, &mut e_down);
+                let e_up = devices.evaluate(&up);
+                let e_down = devices.evaluate(&down);
                 let r_up = devices.residual(&norton, &up, &e_up);
                 let r_down = devices.residual(&norton, &down, &e_down);
                 for row in 0..NODES {
@@ -815,8 +813,7 @@ mod tests {
         for samples in [100, 400, 700, 900, 1300] {
             let (stage, norton, x) = driven_point(samples);
             let devices = &stage.devices;
-            let mut e = DeviceEval::default();
-            devices.evaluate(&x, &mut e);
+            let e = devices.evaluate(&x);
             let r = devices.residual(&norton, &x, &e);
             let banded = devices.newton_step(&e, &r);
             let mut dense = devices.jacobian(&e);
