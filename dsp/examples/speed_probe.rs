@@ -11,6 +11,8 @@ fn main() {
             .unwrap_or(default)
     };
     let (gain, position) = (arg(2, 0.8), arg(3, 1.0) as usize);
+    // Denormals flushed, as `Engine::process_block` and the plugin run the model.
+    let _flush = breakdown_dsp::denormals::FlushGuard::new();
     for q in [Quality::X1, Quality::X4] {
         let mut e = Engine::new(
             &c,
