@@ -1,13 +1,10 @@
 //! The analysis commands as a builder runs them: outputs written, one clear error and a non-zero exit on bad
 //! input, never a panic.
 
-use std::process::Command;
+mod common;
 
 fn breakdown(args: &[&str]) -> (bool, String, String) {
-    let out = Command::new(env!("CARGO_BIN_EXE_breakdown"))
-        .args(args)
-        .output()
-        .expect("the binary runs");
+    let out = common::run(args);
     (
         out.status.success(),
         String::from_utf8_lossy(&out.stdout).into_owned(),
@@ -16,9 +13,7 @@ fn breakdown(args: &[&str]) -> (bool, String, String) {
 }
 
 fn temp_dir(name: &str) -> std::path::PathBuf {
-    let d = std::env::temp_dir().join(format!("breakdown-analysis-{name}-{}", std::process::id()));
-    let _ = std::fs::remove_dir_all(&d);
-    d
+    common::scratch("analysis", name)
 }
 
 #[test]

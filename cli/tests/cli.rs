@@ -4,24 +4,15 @@
 //! BRIEF section 4 (solved here independently), the BRIEF section 3 small-signal gain (computed there with
 //! ngspice), the pot law of BRIEF section 3, and the WAVE format conventions (checked with hound).
 
-use std::path::{Path, PathBuf};
-use std::process::{Command, Output};
+mod common;
 
-const BIN: &str = env!("CARGO_BIN_EXE_breakdown");
+use common::run;
+use std::path::{Path, PathBuf};
+use std::process::Output;
 
 /// A fresh folder per test under cargo's scratch space.
 fn scratch(name: &str) -> PathBuf {
-    let dir = Path::new(env!("CARGO_TARGET_TMPDIR")).join(format!("cli-{name}"));
-    let _ = std::fs::remove_dir_all(&dir);
-    std::fs::create_dir_all(&dir).unwrap();
-    dir
-}
-
-fn run(args: &[&str]) -> Output {
-    Command::new(BIN)
-        .args(args)
-        .output()
-        .expect("run breakdown")
+    common::scratch("cli", name)
 }
 
 fn render(args: &[&str]) -> Output {

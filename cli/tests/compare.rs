@@ -4,23 +4,14 @@
 //! `ebur128` crate, an implementation of ITU-R BS.1770-4; true-peak ceiling -1 dBTP), the WAVE format (read
 //! back with hound), the PNG format (decoded with the png crate) and a real browser (Debian `chromium`).
 
-use std::path::{Path, PathBuf};
-use std::process::{Command, Output};
+mod common;
 
-const BIN: &str = env!("CARGO_BIN_EXE_breakdown");
+use common::{run, BIN};
+use std::path::{Path, PathBuf};
+use std::process::Command;
 
 fn scratch(name: &str) -> PathBuf {
-    let dir = Path::new(env!("CARGO_TARGET_TMPDIR")).join(format!("compare-{name}"));
-    let _ = std::fs::remove_dir_all(&dir);
-    std::fs::create_dir_all(&dir).unwrap();
-    dir
-}
-
-fn run(args: &[&str]) -> Output {
-    Command::new(BIN)
-        .args(args)
-        .output()
-        .expect("run breakdown")
+    common::scratch("compare", name)
 }
 
 /// A guitar-ish test DI: decaying plucked tones (sharp attack, harmonics), stereo, 48 kHz float.

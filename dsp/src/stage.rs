@@ -672,14 +672,16 @@ impl Stage {
         }
         self.older_unknowns = self.previous_unknowns;
         self.previous_unknowns = last_solution;
-        let (report, mut eval) = self.devices.solve(&norton, &mut self.unknowns, max_iterations);
+        let (report, mut eval) = self
+            .devices
+            .solve(&norton, &mut self.unknowns, max_iterations);
         self.last_report = report;
         if !self.last_report.converged {
             // Start again from the last solution without the prediction, with a larger budget.
             self.unknowns = last_solution;
-            let (retry, retry_eval) = self
-                .devices
-                .solve(&norton, &mut self.unknowns, DC_ITERATIONS);
+            let (retry, retry_eval) =
+                self.devices
+                    .solve(&norton, &mut self.unknowns, DC_ITERATIONS);
             eval = retry_eval;
             self.last_report = solver::NewtonReport {
                 iterations: self.last_report.iterations + retry.iterations,
