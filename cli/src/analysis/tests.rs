@@ -144,7 +144,27 @@ fn circuit_from_variant(text: &str) -> Circuit {
     Circuit::from_toml(&toml).unwrap()
 }
 
-fn direct_peaks(circuit: &Circuit, quality: Quality, gain: f64, s: &Stimulus) -> (f64, f64) {
+/// The reference circuit with one more switch position, "probe", holding a pair of parts given by volts.
+fn with_probe_pair(positive_volts: f64, negative_volts: f64) -> Circuit {
+    let mut c = Circuit::reference();
+    c.clamp
+        .position
+        .push(breakdown_dsp::circuit::SwitchPosition {
+            name: "probe".into(),
+            positive: Some(breakdown_dsp::circuit::ZenerSpec::volts(positive_volts)),
+            negative: Some(breakdown_dsp::circuit::ZenerSpec::volts(negative_volts)),
+        });
+    c
+}
+
+/// A direct render of `circuit`'s last switch position (level 0.5, input in volts), for one probe.
+fn direct_render(
+    circuit: &Circuit,
+    quality: Quality,
+    gain: f64,
+    s: &Stimulus,
+    probe: Probe,
+) -> Vec<f32> {
     let settings = Settings {
         gain,
         level: 0.5,
@@ -152,7 +172,11 @@ fn direct_peaks(circuit: &Circuit, quality: Quality, gain: f64, s: &Stimulus) ->
     };
     let mut e = Engine::new(circuit, RATE, quality, settings).unwrap();
     e.set_input_calibration(1.0);
-    let v = e.render(&s.volts, Probe::Clamp);
+    e.render(&s.volts, probe)
+}
+
+fn direct_peaks(circuit: &Circuit, quality: Quality, gain: f64, s: &Stimulus) -> (f64, f64) {
+    let v = direct_render(circuit, quality, gain, s, Probe::Clamp);
     let w = steady_window(&v, s.measure_from);
     let p = w.iter().fold(0.0f32, |m, x| m.max(*x)) as f64;
     let n = w.iter().fold(0.0f32, |m, x| m.min(*x)) as f64;
@@ -164,14 +188,7 @@ fn suggested_pair_meets_a_clamp_goal_when_rendered() {
     let gain = 0.8;
     let s = Stimulus::sustained(1.5, 1000.0);
     // The goal: what a direct render of an 18 V / 7.5 V pair gives on this input, rounded to 0.1 V.
-    let mut c = Circuit::reference();
-    c.clamp
-        .position
-        .push(breakdown_dsp::circuit::SwitchPosition {
-            name: "probe".into(),
-            positive: Some(breakdown_dsp::circuit::ZenerSpec::volts(18.0)),
-            negative: Some(breakdown_dsp::circuit::ZenerSpec::volts(7.5)),
-        });
+    let c = with_probe_pair(18.0, 7.5);
     let (gp, gn) = direct_peaks(&c, Quality::X2, gain, &s);
     let (gp, gn) = ((gp * 10.0).round() / 10.0, (gn * 10.0).round() / 10.0);
     let r = rig(1, gain, Quality::X2);
@@ -202,14 +219,7 @@ fn suggested_pair_meets_a_clamp_goal_when_rendered() {
 }
 
 fn direct_share(circuit: &Circuit, gain: f64, s: &Stimulus) -> f64 {
-    let settings = Settings {
-        gain,
-        level: 0.5,
-        position: circuit.clamp.position.len() - 1,
-    };
-    let mut e = Engine::new(circuit, RATE, Quality::X1, settings).unwrap();
-    e.set_input_calibration(1.0);
-    let i = e.render(&s.volts, Probe::ZenerCurrent);
+    let i = direct_render(circuit, Quality::X1, gain, s, Probe::ZenerCurrent);
     let w = steady_window(&i, s.measure_from);
     w.iter()
         .filter(|x| (x.abs() as f64) > CLAMPED_CURRENT)
@@ -221,14 +231,7 @@ fn direct_share(circuit: &Circuit, gain: f64, s: &Stimulus) -> f64 {
 fn suggested_pair_meets_a_share_goal_when_rendered() {
     let gain = 0.8;
     let s = Stimulus::sustained(1.5, 1000.0);
-    let mut c = Circuit::reference();
-    c.clamp
-        .position
-        .push(breakdown_dsp::circuit::SwitchPosition {
-            name: "probe".into(),
-            positive: Some(breakdown_dsp::circuit::ZenerSpec::volts(27.0)),
-            negative: Some(breakdown_dsp::circuit::ZenerSpec::volts(33.0)),
-        });
+    let c = with_probe_pair(27.0, 33.0);
     // Goal: the share a direct 1x render of a 27 V / 33 V pair gives (count of probe samples).
     let goal = direct_share(&c, gain, &s);
     assert!(goal > 0.05 && goal < 0.95);
