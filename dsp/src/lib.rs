@@ -16,6 +16,7 @@ pub mod engine;
 pub mod fastmath;
 pub mod measure;
 pub mod oversampling;
+pub mod packed;
 
 pub use engine::{Engine, Frame, Meters, Probe};
 pub use oversampling::Quality;

@@ -16,6 +16,7 @@
 use crate::circuit::{Circuit, Placement};
 use crate::devices::triode::Triode;
 use crate::devices::zener::{PairPoint, ZenerPair, CURRENT_SCALE};
+use crate::packed;
 use crate::pot::PotLaw;
 use crate::solver::{self, NewtonReport};
 use crate::wdf::{
@@ -149,13 +150,17 @@ impl StageDevices {
     /// The devices evaluated at the unknowns `x`.
     #[inline(always)]
     fn evaluate(&self, x: &[f64; UNKNOWNS]) -> DeviceEval {
-        let gain = self.gain_valve.currents(
-            x[GAIN_PLATE] - x[GAIN_CATHODE],
-            x[GAIN_GRID] - x[GAIN_CATHODE],
-        );
-        let follower = self.follower_valve.currents(
-            self.supply_volts - x[FOLLOWER_CATHODE],
-            x[GAIN_PLATE] - x[FOLLOWER_CATHODE],
+        let [gain, follower] = Triode::currents_of_two(
+            (
+                &self.gain_valve,
+                x[GAIN_PLATE] - x[GAIN_CATHODE],
+                x[GAIN_GRID] - x[GAIN_CATHODE],
+            ),
+            (
+                &self.follower_valve,
+                self.supply_volts - x[FOLLOWER_CATHODE],
+                x[GAIN_PLATE] - x[FOLLOWER_CATHODE],
+            ),
         );
         let pair = &self.pairs[self.active_pair];
         let point = if pair.is_open() {
@@ -278,7 +283,9 @@ impl StageDevices {
         let e44 = d33 * a44 - a43 * d34;
         let w4 = d33 * y4 - a43 * w3;
         // Back substitution.
-        let (i0, i1, i2, i3, i4) = (1.0 / a00, 1.0 / b11, 1.0 / c22, 1.0 / d33, 1.0 / e44);
+        let [i0, i1] = packed::reciprocals([a00, b11]);
+        let [i2, i3] = packed::reciprocals([c22, d33]);
+        let i4 = 1.0 / e44;
         let x4 = w4 * i4;
         let x3 = (w3 - d34 * x4) * i3;
         let x2 = (w2 - c23 * x3) * i2;

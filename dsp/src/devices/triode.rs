@@ -130,12 +130,16 @@ impl Segment {
     #[cfg_attr(target_arch = "x86_64", allow(dead_code))]
     #[inline(always)]
     fn eval_portable(&self, t: f64) -> (f64, f64) {
-        let [mut value, mut slope] = self.pairs[0];
-        for pair in &self.pairs[1..] {
-            value = value * t + pair[0];
-            slope = slope * t + pair[1];
+        // Estrin's scheme: (P4 + P3 t) + t^2 ((P2 + P1 t) + t^2 P0), a shorter chain than Horner's.
+        let t2 = t * t;
+        let mut acc = [0.0; 2];
+        for (j, acc) in acc.iter_mut().enumerate() {
+            let p = |k: usize| self.pairs[k][j];
+            let low = p(4) + p(3) * t;
+            let high = p(2) + p(1) * t;
+            *acc = low + t2 * (high + t2 * p(0));
         }
-        (value * t + self.c0, slope)
+        (acc[0] * t + self.c0, acc[1])
     }
 
     /// (p(t), dp/dx): the same operations in the same order as the portable version, two lanes at a time.
@@ -450,11 +454,36 @@ impl Triode {
     /// Plate and grid currents with their derivatives.
     #[inline(always)]
     pub fn currents(&self, vpk: f64, vgk: f64) -> TriodeCurrents {
+        let q = 1.0 / (self.kvb + vpk * vpk).sqrt();
+        self.currents_with_q(vpk, vgk, q)
+    }
+
+    /// `currents` of two triodes at once: both Q = 1 / sqrt(kvb + Vpk^2) come from one packed square root and
+    /// one packed division (the processor's divider is slow and shared), with the same correctly rounded
+    /// results as two scalar ones.
+    #[inline(always)]
+    pub fn currents_of_two(
+        (first, first_vpk, first_vgk): (&Triode, f64, f64),
+        (second, second_vpk, second_vgk): (&Triode, f64, f64),
+    ) -> [TriodeCurrents; 2] {
+        let radicands = [
+            first.kvb + first_vpk * first_vpk,
+            second.kvb + second_vpk * second_vpk,
+        ];
+        let [first_q, second_q] = crate::packed::reciprocal_square_roots(radicands);
+        [
+            first.currents_with_q(first_vpk, first_vgk, first_q),
+            second.currents_with_q(second_vpk, second_vgk, second_q),
+        ]
+    }
+
+    /// `currents` given Q = 1 / sqrt(kvb + Vpk^2).
+    #[inline(always)]
+    fn currents_with_q(&self, vpk: f64, vgk: f64, q: f64) -> TriodeCurrents {
         let (grid, grid_dvgk) = Self::grid_current_in(self.grid, vgk);
         let Some((a, da)) = self.power.lookup(vpk) else {
             return self.currents_closed_form(vpk, vgk, grid, grid_dvgk);
         };
-        let q = 1.0 / (self.kvb + vpk * vpk).sqrt();
         // pos of the S table and its derivative by Vgk (S is tabulated with its slope per unit of pos).
         let dpos = self.pos_scale * q;
         let (s, ds) = match self.softplus.lookup(self.pos_offset + vgk * dpos) {
