@@ -110,7 +110,7 @@ struct StageDevices {
 }
 
 /// Device currents and slopes at one Newton point.
-#[derive(Clone, Copy, Debug, Default)]
+#[derive(Clone, Copy, Debug)]
 struct DeviceEval {
     gain_plate: f64,
     gain_grid: f64,
