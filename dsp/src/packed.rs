@@ -14,7 +14,9 @@ pub fn reciprocal_square_roots([x0, x1]: [f64; 2]) -> [f64; 2] {
         split(_mm_div_pd(_mm_set1_pd(1.0), roots))
     }
     #[cfg(not(target_arch = "x86_64"))]
-    [1.0 / x0.sqrt(), 1.0 / x1.sqrt()]
+    {
+        [1.0 / x0.sqrt(), 1.0 / x1.sqrt()]
+    }
 }
 
 /// [1 / x0, 1 / x1].
@@ -27,7 +29,9 @@ pub fn reciprocals([x0, x1]: [f64; 2]) -> [f64; 2] {
         split(_mm_div_pd(_mm_set1_pd(1.0), _mm_set_pd(x1, x0)))
     }
     #[cfg(not(target_arch = "x86_64"))]
-    [1.0 / x0, 1.0 / x1]
+    {
+        [1.0 / x0, 1.0 / x1]
+    }
 }
 
 /// The two lanes of a packed pair, low first.
