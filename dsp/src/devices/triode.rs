@@ -482,7 +482,7 @@ impl Triode {
     fn currents_with_q(&self, vpk: f64, vgk: f64, q: f64) -> TriodeCurrents {
         let (grid, grid_dvgk) = Self::grid_current_in(self.grid, vgk);
         let Some((a, da)) = self.power.lookup(vpk) else {
-            return self.currents_closed_form(vpk, vgk, grid, grid_dvgk);
+            return self.currents_closed_form(vpk, vgk, q, grid, grid_dvgk);
         };
         // pos of the S table and its derivative by Vgk (S is tabulated with its slope per unit of pos).
         let dpos = self.pos_scale * q;
@@ -514,13 +514,14 @@ impl Triode {
         (s, self.ex * s * dl / SP_PER_UNIT)
     }
 
-    /// The plate current from the closed form, for Vpk outside the table.
+    /// The plate current from the closed form, for Vpk outside the table (`inv_root` = Q, already computed).
     #[cold]
     #[inline(never)]
     fn currents_closed_form(
         &self,
         vpk: f64,
         vgk: f64,
+        inv_root: f64,
         grid: f64,
         grid_dvgk: f64,
     ) -> TriodeCurrents {
@@ -533,7 +534,6 @@ impl Triode {
             return out;
         }
         // ln E1 = ln(Vpk / kp) + L(z) with L = ln softplus (tabulated), so Ip = (2 / kg1) exp(ex ln E1).
-        let inv_root = 1.0 / (self.kvb + vpk * vpk).sqrt();
         let z = self.kp * (1.0 / self.mu + vgk * inv_root);
         let (l, dl) = fastmath::ln_softplus(z);
         let plate = 2.0 / self.kg1 * fastmath::exp(self.ex * (fastmath::ln(vpk / self.kp) + l));
