@@ -1,5 +1,6 @@
 //! Quick speed probe: one channel of a decaying plucked tone at 48 kHz through X1 and X4.
-//! Arguments: tenths of a second [gain pot, default 0.8] [switch position, default 1].
+//! Arguments: tenths of a second [gain pot, default 0.8] [switch position, default 1] [only this oversampling
+//! factor, 1 or 4].
 use breakdown_dsp::{Circuit, Engine, Quality, Settings};
 use std::time::Instant;
 fn main() {
@@ -13,7 +14,11 @@ fn main() {
     let (gain, position) = (arg(2, 0.8), arg(3, 1.0) as usize);
     // Denormals flushed, as `Engine::process_block` and the plugin run the model.
     let _flush = breakdown_dsp::denormals::FlushGuard::new();
+    let only = std::env::args().nth(4);
     for q in [Quality::X1, Quality::X4] {
+        if only.as_deref().is_some_and(|f| f != q.factor().to_string()) {
+            continue;
+        }
         let mut e = Engine::new(
             &c,
             48000.0,

@@ -423,27 +423,37 @@ impl Engine {
             self.law_gain = gain;
             self.attenuation = self.gain_law.fraction(gain);
         }
-        let attenuation = self.attenuation;
-        let factor = self.quality.factor();
-        self.up
-            .process(volts * attenuation, &mut self.high_in[..factor]);
-        for k in 0..factor {
-            self.stage.process(self.high_in[k]);
-            // Read the stage's readouts in place (no copy of the whole probe).
+        let drive = volts * self.attenuation;
+        let mut out = [0.0; 6];
+        if self.quality == Quality::X1 {
+            // At the base rate there are no filters: the stage's readouts are the frame.
+            self.stage.process(drive);
             let p = self.stage.probe();
             self.meters.record(p, self.stage.last_report());
-            let values = Self::probe_values(p, self.listen_units_per_volt);
-            for (row, v) in self.high_out.iter_mut().zip(values) {
-                row[k] = v;
+            out = Self::probe_values(p, self.listen_units_per_volt);
+        } else {
+            let factor = self.quality.factor();
+            self.up.process(drive, &mut self.high_in[..factor]);
+            for k in 0..factor {
+                self.stage.process(self.high_in[k]);
+                // Read the stage's readouts in place (no copy of the whole probe).
+                let p = self.stage.probe();
+                self.meters.record(p, self.stage.last_report());
+                let values = Self::probe_values(p, self.listen_units_per_volt);
+                for (row, v) in self.high_out.iter_mut().zip(values) {
+                    row[k] = v;
+                }
+            }
+            for (probe, o) in out.iter_mut().enumerate() {
+                if self.active[probe] {
+                    *o = self.down[probe].process(&self.high_out[probe][..factor]);
+                }
             }
         }
-        let mut out = [0.0; 6];
-        for (probe, o) in out.iter_mut().enumerate() {
-            if !self.active[probe] {
-                continue;
+        for (o, active) in out.iter_mut().zip(self.active) {
+            if !(active && o.is_finite()) {
+                *o = 0.0;
             }
-            let v = self.down[probe].process(&self.high_out[probe][..factor]);
-            *o = if v.is_finite() { v } else { 0.0 };
         }
         self.frame = Frame {
             listen: out[Probe::Listen.index()],

@@ -291,14 +291,7 @@ impl StageDevices {
         let x2 = (w2 - c23 * x3) * i2;
         let x1 = (z1 - b12 * x2) * i1;
         let x0 = (y0 - a01 * x1) * i0;
-        // Written so that a NaN fails the test.
-        if (a00 > 0.0)
-            & (b11 > 0.0)
-            & (c22 > 0.0)
-            & (d33 > 0.0)
-            & (e44 > 0.0)
-            & (e44 < f64::INFINITY)
-        {
+        if packed::positive_pivots([a00, b11, c22, d33], e44) {
             return [x0, x1, x2, x3, x4];
         }
         let mut dense = j;
