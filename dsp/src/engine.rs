@@ -82,8 +82,9 @@ pub struct Meters {
     pub zener_current_square_sum: f64,
     pub positive_part_peak_watts: f64,
     pub negative_part_peak_watts: f64,
-    pub positive_part_energy: f64,
-    pub negative_part_energy: f64,
+    /// Sums of the parts' instantaneous power over the samples (W; times `period`, the energy in J).
+    pub positive_part_watt_sum: f64,
+    pub negative_part_watt_sum: f64,
     pub gain_grid_current_peak: f64,
     pub follower_grid_current_peak: f64,
     pub gain_plate_current_min: f64,
@@ -121,13 +122,13 @@ impl Meters {
     }
     /// Average power (W) in the positive-clamp and negative-clamp parts.
     pub fn average_watts(&self) -> (f64, f64) {
-        let time = self.samples as f64 * self.period;
-        if time == 0.0 {
+        if self.samples == 0 {
             (0.0, 0.0)
         } else {
+            let samples = self.samples as f64;
             (
-                self.positive_part_energy / time,
-                self.negative_part_energy / time,
+                self.positive_part_watt_sum / samples,
+                self.negative_part_watt_sum / samples,
             )
         }
     }
@@ -155,8 +156,8 @@ impl Meters {
         let (wp, wn) = (p.positive_part_watts(), p.negative_part_watts());
         self.positive_part_peak_watts = larger(self.positive_part_peak_watts, wp);
         self.negative_part_peak_watts = larger(self.negative_part_peak_watts, wn);
-        self.positive_part_energy += wp * self.period;
-        self.negative_part_energy += wn * self.period;
+        self.positive_part_watt_sum += wp;
+        self.negative_part_watt_sum += wn;
         self.gain_grid_current_peak = larger(self.gain_grid_current_peak, p.gain_grid_current);
         self.follower_grid_current_peak =
             larger(self.follower_grid_current_peak, p.follower_grid_current);
@@ -209,8 +210,7 @@ impl Glide {
     fn next(&mut self) -> f64 {
         if self.value == self.target {
             // At rest: the step below would add zero and snap to the target, so return the target directly.
-            self.value = self.target;
-            return self.value;
+            return self.target;
         }
         self.value += (self.target - self.value) * self.coeff;
         if (self.target - self.value).abs() < 1e-9 {
@@ -397,6 +397,27 @@ impl Engine {
     /// Process one host sample (full-scale units) and return every probe at the host rate.
     #[inline]
     pub fn process_sample(&mut self, input: f32) -> &Frame {
+        let mut out = self.advance(input);
+        for (o, active) in out.iter_mut().zip(self.active) {
+            if !(active && o.is_finite()) {
+                *o = 0.0;
+            }
+        }
+        self.frame = Frame {
+            listen: out[Probe::Listen.index()],
+            clamp_volts: out[Probe::Clamp.index()],
+            wiper_volts: out[Probe::Wiper.index()],
+            zener_current: out[Probe::ZenerCurrent.index()],
+            positive_part_volts: out[Probe::PositivePartVolts.index()],
+            negative_part_volts: out[Probe::NegativePartVolts.index()],
+        };
+        &self.frame
+    }
+
+    /// One host sample through the model: the probes' values in `Probe` order, the active ones decimated (the
+    /// others unspecified), not yet checked for finiteness.
+    #[inline(always)]
+    fn advance(&mut self, input: f32) -> [f64; 6] {
         let mut x = input as f64;
         if !x.is_finite() {
             x = 0.0;
@@ -450,20 +471,7 @@ impl Engine {
                 }
             }
         }
-        for (o, active) in out.iter_mut().zip(self.active) {
-            if !(active && o.is_finite()) {
-                *o = 0.0;
-            }
-        }
-        self.frame = Frame {
-            listen: out[Probe::Listen.index()],
-            clamp_volts: out[Probe::Clamp.index()],
-            wiper_volts: out[Probe::Wiper.index()],
-            zener_current: out[Probe::ZenerCurrent.index()],
-            positive_part_volts: out[Probe::PositivePartVolts.index()],
-            negative_part_volts: out[Probe::NegativePartVolts.index()],
-        };
-        &self.frame
+        out
     }
 
     /// Process a block, writing one probe. Output is delayed by `latency()` samples.
@@ -473,8 +481,11 @@ impl Engine {
             self.set_active_probes(&[probe]);
         }
         let _guard = crate::denormals::FlushGuard::new();
+        let index = probe.index();
         for (x, y) in input.iter().zip(output.iter_mut()) {
-            *y = self.process_sample(*x).get(probe) as f32;
+            // Only this probe is active: the others are neither decimated nor read.
+            let v = self.advance(*x)[index];
+            *y = if v.is_finite() { v as f32 } else { 0.0 };
         }
     }
 
@@ -546,7 +557,7 @@ mod tests {
     }
 
     /// The meters against their definitions, recomputed directly from every internal-rate stage probe of an
-    /// identical engine: counts, f64::max / f64::min of the readouts, sums of I^2 and of V I times the period.
+    /// identical engine: counts, f64::max / f64::min of the readouts, sums of I^2 and of V I.
     #[test]
     fn meters_match_their_definitions() {
         let circuit = Circuit::reference();
@@ -604,8 +615,8 @@ mod tests {
                 let wn = p.negative_part_volts * i;
                 m.positive_part_peak_watts = m.positive_part_peak_watts.max(wp);
                 m.negative_part_peak_watts = m.negative_part_peak_watts.max(wn);
-                m.positive_part_energy += wp * period;
-                m.negative_part_energy += wn * period;
+                m.positive_part_watt_sum += wp;
+                m.negative_part_watt_sum += wn;
                 m.gain_grid_current_peak = m.gain_grid_current_peak.max(p.gain_grid_current);
                 m.follower_grid_current_peak =
                     m.follower_grid_current_peak.max(p.follower_grid_current);
@@ -620,7 +631,7 @@ mod tests {
         assert_eq!(probes, input.len() * factor);
         // Both directions clamped hard, so every peak and energy field is exercised.
         assert!(expected.clamp_peak_positive > 10.0 && expected.clamp_peak_negative < -3.0);
-        assert!(expected.clamped_samples > 0 && expected.positive_part_energy > 0.0);
+        assert!(expected.clamped_samples > 0 && expected.positive_part_watt_sum > 0.0);
         assert_eq!(*engine.meters(), expected);
     }
 }

@@ -687,10 +687,12 @@ impl Stage {
                 iterations: self.last_report.iterations + retry.iterations,
                 converged: retry.converged,
             };
-        }
-        if !self.unknowns.iter().all(|v| v.is_finite()) {
-            self.unknowns = last_solution;
-            eval = self.devices.evaluate(&last_solution);
+            // A converged solve ends on a finite point (each accepted step is finite and within its
+            // tolerance, from a finite start); only a failed one can leave anything else.
+            if !self.unknowns.iter().all(|v| v.is_finite()) {
+                self.unknowns = last_solution;
+                eval = self.devices.evaluate(&last_solution);
+            }
         }
         let e = &eval;
         let x = &self.unknowns;

@@ -205,8 +205,8 @@ pub fn checked(rig: &Rig, o: Outcome) -> Result<Outcome, String> {
         m.clamp_peak_positive,
         m.clamp_peak_negative,
         m.zener_peak_current,
-        m.positive_part_energy,
-        m.negative_part_energy,
+        m.positive_part_watt_sum,
+        m.negative_part_watt_sum,
         o.wiper_rms,
     ]
     .iter()
