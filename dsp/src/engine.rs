@@ -1,6 +1,7 @@
 //! The engine: input calibration, the gain pot, oversampling around the stage, smoothing of pot moves,
 //! latency-compensated probes in real volts and the clamp meters. Real-time safe after `Engine::new`.
 
+use crate::arith::{Arith, Separate};
 use crate::circuit::{Circuit, CircuitError, Settings};
 use crate::oversampling::{self, Downsampler, Quality, Upsampler};
 use crate::pot::PotLaw;
@@ -245,6 +246,8 @@ pub struct Engine {
     active: [bool; 6],
     meters: Meters,
     frame: Frame,
+    /// Run the model's fused multiply-add copy (this processor has FMA; see `arith`).
+    fused: bool,
 }
 
 impl Engine {
@@ -296,6 +299,7 @@ impl Engine {
             active: [true; 6],
             meters: Meters::new(1.0 / (sample_rate * factor as f64)),
             frame: Frame::default(),
+            fused: crate::arith::fused_available(),
         };
         engine.reset();
         Ok(engine)
@@ -397,7 +401,12 @@ impl Engine {
     /// Process one host sample (full-scale units) and return every probe at the host rate.
     #[inline]
     pub fn process_sample(&mut self, input: f32) -> &Frame {
-        let mut out = self.advance(input);
+        let mut out = if self.fused {
+            // SAFETY: `fused` is set only where the processor has FMA.
+            unsafe { self.advance_fused(input) }
+        } else {
+            self.advance::<Separate>(input)
+        };
         for (o, active) in out.iter_mut().zip(self.active) {
             if !(active && o.is_finite()) {
                 *o = 0.0;
@@ -417,7 +426,7 @@ impl Engine {
     /// One host sample through the model: the probes' values in `Probe` order, the active ones decimated (the
     /// others unspecified), not yet checked for finiteness.
     #[inline(always)]
-    fn advance(&mut self, input: f32) -> [f64; 6] {
+    fn advance<A: Arith>(&mut self, input: f32) -> [f64; 6] {
         let mut x = input as f64;
         if !x.is_finite() {
             x = 0.0;
@@ -448,7 +457,7 @@ impl Engine {
         let mut out = [0.0; 6];
         if self.quality == Quality::X1 {
             // At the base rate there are no filters: the stage's readouts are the frame.
-            self.stage.process(drive);
+            self.stage.process_as::<A>(drive);
             let p = self.stage.probe();
             self.meters.record(p, self.stage.last_report());
             out = Self::probe_values(p, self.listen_units_per_volt);
@@ -456,7 +465,7 @@ impl Engine {
             let factor = self.quality.factor();
             self.up.process(drive, &mut self.high_in[..factor]);
             for k in 0..factor {
-                self.stage.process(self.high_in[k]);
+                self.stage.process_as::<A>(self.high_in[k]);
                 // Read the stage's readouts in place (no copy of the whole probe).
                 let p = self.stage.probe();
                 self.meters.record(p, self.stage.last_report());
@@ -482,9 +491,44 @@ impl Engine {
         }
         let _guard = crate::denormals::FlushGuard::new();
         let index = probe.index();
+        if self.fused {
+            // SAFETY: `fused` is set only where the processor has FMA.
+            unsafe { self.block_fused(input, output, index) }
+        } else {
+            self.block::<Separate>(input, output, index);
+        }
+    }
+
+    /// `advance` of the fused copy, compiled with the FMA instructions.
+    #[cfg(target_arch = "x86_64")]
+    #[target_feature(enable = "fma")]
+    unsafe fn advance_fused(&mut self, input: f32) -> [f64; 6] {
+        self.advance::<crate::arith::Fused>(input)
+    }
+
+    #[cfg(not(target_arch = "x86_64"))]
+    unsafe fn advance_fused(&mut self, input: f32) -> [f64; 6] {
+        self.advance::<Separate>(input)
+    }
+
+    /// `block` of the fused copy, compiled with the FMA instructions.
+    #[cfg(target_arch = "x86_64")]
+    #[target_feature(enable = "fma")]
+    unsafe fn block_fused(&mut self, input: &[f32], output: &mut [f32], index: usize) {
+        self.block::<crate::arith::Fused>(input, output, index);
+    }
+
+    #[cfg(not(target_arch = "x86_64"))]
+    unsafe fn block_fused(&mut self, input: &[f32], output: &mut [f32], index: usize) {
+        self.block::<Separate>(input, output, index);
+    }
+
+    /// The probe at `index` for each input sample, the only one active.
+    #[inline(always)]
+    fn block<A: Arith>(&mut self, input: &[f32], output: &mut [f32], index: usize) {
         for (x, y) in input.iter().zip(output.iter_mut()) {
-            // Only this probe is active: the others are neither decimated nor read.
-            let v = self.advance(*x)[index];
+            // The other probes are neither decimated nor read.
+            let v = self.advance::<A>(*x)[index];
             *y = if v.is_finite() { v as f32 } else { 0.0 };
         }
     }
@@ -510,6 +554,63 @@ impl Engine {
 #[cfg(test)]
 mod tests {
     use super::*;
+    use crate::arith::Fused;
+
+    /// The fused and separate multiply-add copies of the model are the same model: driven hard into both
+    /// clamps, at 1x and 4x, their clamp-node and listening outputs differ by roundings only.
+    #[test]
+    fn fused_and_separate_copies_agree() {
+        if !crate::arith::fused_available() {
+            eprintln!(
+                "this processor has no FMA: the fused copy never runs here, nothing to compare"
+            );
+            return;
+        }
+        let circuit = Circuit::reference();
+        let settings = Settings {
+            gain: 1.0,
+            level: 0.5,
+            position: 2,
+        };
+        let input: Vec<f32> = (0..4800)
+            .map(|n| {
+                let t = n as f64 / 48_000.0;
+                (0.9 * (2.0 * std::f64::consts::PI * 220.0 * t).sin()) as f32
+            })
+            .collect();
+        for quality in [Quality::X1, Quality::X4] {
+            let mut separate = Engine::new(&circuit, 48_000.0, quality, settings).unwrap();
+            let mut fused = separate.clone();
+            let (mut worst, mut peak) = ([0.0f64; 2], [0.0f64; 2]);
+            for &x in &input {
+                let a = separate.advance::<Separate>(x);
+                // SAFETY: checked above that the processor has FMA.
+                let b = unsafe { fused.advance_fused(x) };
+                for (k, probe) in [Probe::Clamp, Probe::Listen].into_iter().enumerate() {
+                    let (a, b) = (a[probe.index()], b[probe.index()]);
+                    worst[k] = worst[k].max((a - b).abs());
+                    peak[k] = peak[k].max(a.abs());
+                }
+            }
+            assert!(
+                peak[0] > 5.0,
+                "{quality:?}: the pair should clamp, peak {} V",
+                peak[0]
+            );
+            for k in 0..2 {
+                assert!(
+                    worst[k] <= 1e-9 * peak[k],
+                    "{quality:?} probe {k}: fused and separate differ by {:e} (peak {})",
+                    worst[k],
+                    peak[k]
+                );
+            }
+            eprintln!(
+                "{quality:?}: largest difference {:e} V at the clamp node",
+                worst[0]
+            );
+        }
+    }
 
     /// A probe switched on mid-stream gives, from `decimator_memory` host samples after switching on, exactly
     /// the output it gives when on all along (the compare renders read the clamp node only around their scope
@@ -601,7 +702,12 @@ mod tests {
                 (x * twin.input_volts_per_unit).clamp(-INPUT_LIMIT_VOLTS, INPUT_LIMIT_VOLTS);
             twin.up.process(volts * attenuation, &mut high[..factor]);
             for &h in &high[..factor] {
-                let p = *twin.stage.process(h);
+                // The engine's copy of the model (f64::mul_add gives the fused result wherever it runs).
+                let p = if twin.fused {
+                    *twin.stage.process_as::<Fused>(h)
+                } else {
+                    *twin.stage.process(h)
+                };
                 let report = twin.stage.last_report();
                 let m = &mut expected;
                 let i = p.zener_current;

@@ -1,6 +1,7 @@
 //! Breakdown's model: a valve gain stage, a cathode follower and a mode-switched Zener clamp as a wave digital
 //! filter, in real volts. See `stage.rs` for the circuit as it reads on a schematic.
 
+pub mod arith;
 pub mod circuit;
 pub mod devices;
 pub mod parts;

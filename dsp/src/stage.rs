@@ -13,6 +13,7 @@
 //! sample (no unit delay). Each node meets only its schematic neighbours, so every Newton step is a banded
 //! elimination written out in a few lines.
 
+use crate::arith::{Arith, Separate};
 use crate::circuit::{Circuit, Placement};
 use crate::devices::triode::Triode;
 use crate::devices::zener::{PairPoint, ZenerPair, CURRENT_SCALE};
@@ -149,8 +150,8 @@ fn port_changes(step: &[f64; UNKNOWNS]) -> [f64; PORTS] {
 impl StageDevices {
     /// The devices evaluated at the unknowns `x`.
     #[inline(always)]
-    fn evaluate(&self, x: &[f64; UNKNOWNS]) -> DeviceEval {
-        let [gain, follower] = Triode::currents_of_two(
+    fn evaluate<A: Arith>(&self, x: &[f64; UNKNOWNS]) -> DeviceEval {
+        let [gain, follower] = Triode::currents_of_two::<A>(
             (
                 &self.gain_valve,
                 x[GAIN_PLATE] - x[GAIN_CATHODE],
@@ -171,7 +172,7 @@ impl StageDevices {
                 ..Default::default()
             }
         } else {
-            pair.port(x[PAIR_S])
+            pair.port_as::<A>(x[PAIR_S])
         };
         DeviceEval {
             gain_plate: gain.plate,
@@ -197,9 +198,14 @@ impl StageDevices {
     /// the Norton currents G_e b_e in `norton`) and into the devices, at the point evaluated in `e`. Zero at
     /// the solution.
     #[inline(always)]
-    fn residual(&self, norton: &[f64; EDGES], x: &[f64; UNKNOWNS], e: &DeviceEval) -> [f64; NODES] {
+    fn residual<A: Arith>(
+        &self,
+        norton: &[f64; EDGES],
+        x: &[f64; UNKNOWNS],
+        e: &DeviceEval,
+    ) -> [f64; NODES] {
         let g = &self.conductance;
-        let edge = |edge: usize, volts: f64| g[edge] * volts - norton[edge];
+        let edge = |edge: usize, volts: f64| A::madd(g[edge], volts, -norton[edge]);
         let clamp_volts = e.pair_volts;
         let coupling = edge(COUPLING_FEED, x[FOLLOWER_CATHODE] - clamp_volts);
         [
@@ -216,7 +222,7 @@ impl StageDevices {
     /// The Jacobian of `residual` by the unknowns (rows: nodes; columns: unknowns). Each node meets only its
     /// neighbours in the schematic, so the matrix is banded: one entry above the diagonal, two below.
     #[inline(always)]
-    fn jacobian(&self, e: &DeviceEval) -> [[f64; UNKNOWNS]; NODES] {
+    fn jacobian<A: Arith>(&self, e: &DeviceEval) -> [[f64; UNKNOWNS]; NODES] {
         let g = &self.conductance;
         // Gain valve: Vpk = plate - cathode, Vgk = grid - cathode; follower: Vpk = B+ - cathode,
         // Vgk = gain plate - follower cathode.
@@ -250,7 +256,7 @@ impl StageDevices {
                 0.0,
                 0.0,
                 -coupling,
-                (coupling + g[LEVEL_NETWORK]) * dv + di,
+                A::madd(coupling + g[LEVEL_NETWORK], dv, di),
             ],
         ]
     }
@@ -260,37 +266,39 @@ impl StageDevices {
     /// combined by cross-multiplying instead of dividing by each pivot, so the five divisions wait for no
     /// one another; a dense pivoted solve takes over if a pivot is not positive.
     #[inline(always)]
-    fn newton_step(&self, e: &DeviceEval, r: &[f64; NODES]) -> [f64; UNKNOWNS] {
-        let j = self.jacobian(e);
+    fn newton_step<A: Arith>(&self, e: &DeviceEval, r: &[f64; NODES]) -> [f64; UNKNOWNS] {
+        let j = self.jacobian::<A>(e);
+        // a b - c d, the first product in the multiply-add.
+        let cross = |a: f64, b: f64, c: f64, d: f64| A::madd(a, b, -(c * d));
         let [[a00, a01, ..], [a10, a11, a12, ..], [a20, a21, a22, a23, _], [_, _, a32, a33, a34], [.., a43, a44]] =
             j;
         let (y0, y1, y2, y3, y4) = (-r[0], -r[1], -r[2], -r[3], -r[4]);
         // Column 0 out of rows 1 and 2.
-        let b11 = a00 * a11 - a10 * a01;
+        let b11 = cross(a00, a11, a10, a01);
         let b12 = a00 * a12;
-        let z1 = a00 * y1 - a10 * y0;
-        let b21 = a00 * a21 - a20 * a01;
+        let z1 = cross(a00, y1, a10, y0);
+        let b21 = cross(a00, a21, a20, a01);
         let b22 = a00 * a22;
         let b23 = a00 * a23;
-        let z2 = a00 * y2 - a20 * y0;
+        let z2 = cross(a00, y2, a20, y0);
         // Column 1 out of row 2, column 2 out of row 3, column 3 out of row 4.
-        let c22 = b11 * b22 - b21 * b12;
+        let c22 = cross(b11, b22, b21, b12);
         let c23 = b11 * b23;
-        let w2 = b11 * z2 - b21 * z1;
-        let d33 = c22 * a33 - a32 * c23;
+        let w2 = cross(b11, z2, b21, z1);
+        let d33 = cross(c22, a33, a32, c23);
         let d34 = c22 * a34;
-        let w3 = c22 * y3 - a32 * w2;
-        let e44 = d33 * a44 - a43 * d34;
-        let w4 = d33 * y4 - a43 * w3;
+        let w3 = cross(c22, y3, a32, w2);
+        let e44 = cross(d33, a44, a43, d34);
+        let w4 = cross(d33, y4, a43, w3);
         // Back substitution.
         let [i0, i1] = packed::reciprocals([a00, b11]);
         let [i2, i3] = packed::reciprocals([c22, d33]);
         let i4 = 1.0 / e44;
         let x4 = w4 * i4;
-        let x3 = (w3 - d34 * x4) * i3;
-        let x2 = (w2 - c23 * x3) * i2;
-        let x1 = (z1 - b12 * x2) * i1;
-        let x0 = (y0 - a01 * x1) * i0;
+        let x3 = A::madd(-d34, x4, w3) * i3;
+        let x2 = A::madd(-c23, x3, w2) * i2;
+        let x1 = A::madd(-b12, x2, z1) * i1;
+        let x0 = A::madd(-a01, x1, y0) * i0;
         if packed::positive_pivots([a00, b11, c22, d33], e44) {
             return [x0, x1, x2, x3, x4];
         }
@@ -304,41 +312,41 @@ impl StageDevices {
     /// is within its tolerance (most samples: the first step from the predictor). Leaves the solution in `x`
     /// and returns its device currents (first-order corrected through the last step).
     #[inline(always)]
-    fn solve(
+    fn solve<A: Arith>(
         &self,
         norton: &[f64; EDGES],
         x: &mut [f64; UNKNOWNS],
         max_iterations: u32,
     ) -> (NewtonReport, DeviceEval) {
-        let mut eval = self.evaluate(x);
-        let step = self.newton_step(&eval, &self.residual(norton, x, &eval));
-        if self.accept(x, &mut eval, &step) {
+        let mut eval = self.evaluate::<A>(x);
+        let step = self.newton_step::<A>(&eval, &self.residual::<A>(norton, x, &eval));
+        if self.accept::<A>(x, &mut eval, &step) {
             let report = NewtonReport {
                 iterations: 1,
                 converged: true,
             };
             return (report, eval);
         }
-        let report = self.damped_newton(norton, x, &mut eval, step, max_iterations);
+        let report = self.damped_newton::<A>(norton, x, &mut eval, step, max_iterations);
         (report, eval)
     }
 
     /// The devices evaluated at `x` (into `eval`) and the full Newton step from there (damped iterations).
     #[inline(always)]
-    fn step_from(
+    fn step_from<A: Arith>(
         &self,
         norton: &[f64; EDGES],
         x: &[f64; UNKNOWNS],
         eval: &mut DeviceEval,
     ) -> [f64; UNKNOWNS] {
-        *eval = self.evaluate(x);
-        let r = self.residual(norton, x, eval);
-        self.newton_step(eval, &r)
+        *eval = self.evaluate::<A>(x);
+        let r = self.residual::<A>(norton, x, eval);
+        self.newton_step::<A>(eval, &r)
     }
 
     /// Take `step` and carry the device currents through it if every port's change is within its tolerance.
     #[inline(always)]
-    fn accept(
+    fn accept<A: Arith>(
         &self,
         x: &mut [f64; UNKNOWNS],
         eval: &mut DeviceEval,
@@ -354,7 +362,7 @@ impl StageDevices {
             for (x, s) in x.iter_mut().zip(step) {
                 *x += s;
             }
-            eval.carry(&ports);
+            eval.carry::<A>(&ports);
         }
         small
     }
@@ -362,7 +370,39 @@ impl StageDevices {
     /// The rest of a solve whose first `step` was too large to accept: damped Newton, each step scaled so that
     /// no device port moves further than its limit (a trust region, as SPICE limits junction steps).
     #[inline(never)]
-    fn damped_newton(
+    fn damped_newton<A: Arith>(
+        &self,
+        norton: &[f64; EDGES],
+        x: &mut [f64; UNKNOWNS],
+        eval: &mut DeviceEval,
+        step: [f64; UNKNOWNS],
+        max_iterations: u32,
+    ) -> NewtonReport {
+        #[cfg(target_arch = "x86_64")]
+        if A::FUSED {
+            // SAFETY: the fused copy runs only where the processor has FMA (`arith::fused_available`).
+            return unsafe { self.damped_newton_fused::<A>(norton, x, eval, step, max_iterations) };
+        }
+        self.damped_newton_body::<A>(norton, x, eval, step, max_iterations)
+    }
+
+    /// `damped_newton` compiled with the FMA instructions, for the fused copy (it is not inlined into the
+    /// engine's FMA-enabled loop).
+    #[cfg(target_arch = "x86_64")]
+    #[target_feature(enable = "fma")]
+    unsafe fn damped_newton_fused<A: Arith>(
+        &self,
+        norton: &[f64; EDGES],
+        x: &mut [f64; UNKNOWNS],
+        eval: &mut DeviceEval,
+        step: [f64; UNKNOWNS],
+        max_iterations: u32,
+    ) -> NewtonReport {
+        self.damped_newton_body::<A>(norton, x, eval, step, max_iterations)
+    }
+
+    #[inline(always)]
+    fn damped_newton_body<A: Arith>(
         &self,
         norton: &[f64; EDGES],
         x: &mut [f64; UNKNOWNS],
@@ -411,13 +451,13 @@ impl StageDevices {
                 break;
             }
             report.iterations += 1;
-            step = self.step_from(norton, x, eval);
-            if self.accept(x, eval, &step) {
+            step = self.step_from::<A>(norton, x, eval);
+            if self.accept::<A>(x, eval, &step) {
                 report.converged = true;
                 return report;
             }
         }
-        *eval = self.evaluate(x);
+        *eval = self.evaluate::<A>(x);
         report
     }
 }
@@ -426,16 +466,30 @@ impl DeviceEval {
     /// Carry the device currents, the pair voltage and the negative part's voltage through a last (tiny)
     /// change `ports` of the device ports, to first order.
     #[inline(always)]
-    fn carry(&mut self, ports: &[f64; PORTS]) {
-        self.gain_plate +=
-            self.gain_plate_dvpk * ports[GAIN_VPK] + self.gain_plate_dvgk * ports[GAIN_VGK];
-        self.gain_grid += self.gain_grid_dvgk * ports[GAIN_VGK];
-        self.follower_plate += self.follower_plate_dvpk * ports[FOLLOWER_VPK]
-            + self.follower_plate_dvgk * ports[FOLLOWER_VGK];
-        self.follower_grid += self.follower_grid_dvgk * ports[FOLLOWER_VGK];
-        self.pair_current += self.pair_current_ds * ports[PAIR_PORT];
-        self.pair_volts += self.pair_volts_ds * ports[PAIR_PORT];
-        self.negative_part_volts += self.negative_part_volts_ds * ports[PAIR_PORT];
+    fn carry<A: Arith>(&mut self, ports: &[f64; PORTS]) {
+        self.gain_plate += A::madd(
+            self.gain_plate_dvpk,
+            ports[GAIN_VPK],
+            self.gain_plate_dvgk * ports[GAIN_VGK],
+        );
+        self.gain_grid = A::madd(self.gain_grid_dvgk, ports[GAIN_VGK], self.gain_grid);
+        self.follower_plate += A::madd(
+            self.follower_plate_dvpk,
+            ports[FOLLOWER_VPK],
+            self.follower_plate_dvgk * ports[FOLLOWER_VGK],
+        );
+        self.follower_grid = A::madd(
+            self.follower_grid_dvgk,
+            ports[FOLLOWER_VGK],
+            self.follower_grid,
+        );
+        self.pair_current = A::madd(self.pair_current_ds, ports[PAIR_PORT], self.pair_current);
+        self.pair_volts = A::madd(self.pair_volts_ds, ports[PAIR_PORT], self.pair_volts);
+        self.negative_part_volts = A::madd(
+            self.negative_part_volts_ds,
+            ports[PAIR_PORT],
+            self.negative_part_volts,
+        );
     }
 }
 
@@ -619,7 +673,7 @@ impl Stage {
         // Grid at 0 V, cathode at 1.5 V, plate near half the supply, follower grid 1 V below its cathode, pair at rest.
         let half_supply = 0.5 * self.devices.supply_volts;
         self.unknowns = [0.0, 1.5, half_supply + 1.5, half_supply + 2.5, 0.0];
-        self.step(DC_ITERATIONS);
+        self.step::<Separate>(DC_ITERATIONS);
         self.previous_unknowns = self.unknowns;
         self.older_unknowns = self.unknowns;
         let cathode_volts = self.cathode_network.second.voltage();
@@ -630,7 +684,7 @@ impl Stage {
         self.coupling_feed.first.first.charge_to(coupling_volts);
         self.update_root();
         // One silent sample in transient mode to settle every wave on the new discretisation.
-        self.step(DC_ITERATIONS);
+        self.step::<Separate>(DC_ITERATIONS);
         self.previous_unknowns = self.unknowns;
         self.older_unknowns = self.unknowns;
     }
@@ -638,13 +692,19 @@ impl Stage {
     /// Advance one internal sample with `grid_source_volts` at the gain pot's wiper.
     #[inline]
     pub fn process(&mut self, grid_source_volts: f64) -> &StageProbe {
+        self.process_as::<Separate>(grid_source_volts)
+    }
+
+    /// `process` with `A`'s multiply-add (see `arith`; `Fused` only in code compiled for it).
+    #[inline(always)]
+    pub fn process_as<A: Arith>(&mut self, grid_source_volts: f64) -> &StageProbe {
         self.grid_feed.volts = grid_source_volts;
-        self.step(MAX_ITERATIONS);
+        self.step::<A>(MAX_ITERATIONS);
         &self.probe
     }
 
-    #[inline]
-    fn step(&mut self, max_iterations: u32) {
+    #[inline(always)]
+    fn step<A: Arith>(&mut self, max_iterations: u32) {
         let b = [
             self.grid_feed.reflected(),
             self.cathode_network.reflected(),
@@ -672,16 +732,16 @@ impl Stage {
         }
         self.older_unknowns = self.previous_unknowns;
         self.previous_unknowns = last_solution;
-        let (report, mut eval) = self
-            .devices
-            .solve(&norton, &mut self.unknowns, max_iterations);
+        let (report, mut eval) =
+            self.devices
+                .solve::<A>(&norton, &mut self.unknowns, max_iterations);
         self.last_report = report;
         if !self.last_report.converged {
             // Start again from the last solution without the prediction, with a larger budget.
             self.unknowns = last_solution;
             let (retry, retry_eval) =
                 self.devices
-                    .solve(&norton, &mut self.unknowns, DC_ITERATIONS);
+                    .solve::<A>(&norton, &mut self.unknowns, DC_ITERATIONS);
             eval = retry_eval;
             self.last_report = solver::NewtonReport {
                 iterations: self.last_report.iterations + retry.iterations,
@@ -691,7 +751,7 @@ impl Stage {
             // tolerance, from a finite start); only a failed one can leave anything else.
             if !self.unknowns.iter().all(|v| v.is_finite()) {
                 self.unknowns = last_solution;
-                eval = self.devices.evaluate(&last_solution);
+                eval = self.devices.evaluate::<A>(&last_solution);
             }
         }
         let e = &eval;
@@ -785,17 +845,17 @@ mod tests {
         for samples in [100, 400, 700, 900, 1300] {
             let (stage, norton, x) = driven_point(samples);
             let devices = &stage.devices;
-            let e = devices.evaluate(&x);
-            let jacobian = devices.jacobian(&e);
+            let e = devices.evaluate::<Separate>(&x);
+            let jacobian = devices.jacobian::<Separate>(&e);
             for col in 0..UNKNOWNS {
                 let h = 1e-6 * (1.0 + x[col].abs());
                 let (mut up, mut down) = (x, x);
                 up[col] += h;
                 down[col] -= h;
-                let e_up = devices.evaluate(&up);
-                let e_down = devices.evaluate(&down);
-                let r_up = devices.residual(&norton, &up, &e_up);
-                let r_down = devices.residual(&norton, &down, &e_down);
+                let e_up = devices.evaluate::<Separate>(&up);
+                let e_down = devices.evaluate::<Separate>(&down);
+                let r_up = devices.residual::<Separate>(&norton, &up, &e_up);
+                let r_down = devices.residual::<Separate>(&norton, &down, &e_down);
                 for row in 0..NODES {
                     let numeric = (r_up[row] - r_down[row]) / (2.0 * h);
                     let scale: f64 = jacobian[row].iter().map(|v| v.abs()).sum();
@@ -817,10 +877,10 @@ mod tests {
         for samples in [100, 400, 700, 900, 1300] {
             let (stage, norton, x) = driven_point(samples);
             let devices = &stage.devices;
-            let e = devices.evaluate(&x);
-            let r = devices.residual(&norton, &x, &e);
-            let banded = devices.newton_step(&e, &r);
-            let mut dense = devices.jacobian(&e);
+            let e = devices.evaluate::<Separate>(&x);
+            let r = devices.residual::<Separate>(&norton, &x, &e);
+            let banded = devices.newton_step::<Separate>(&e, &r);
+            let mut dense = devices.jacobian::<Separate>(&e);
             let mut step = [-r[0], -r[1], -r[2], -r[3], -r[4]];
             solver::solve_in_place(&mut dense, &mut step);
             for (k, (a, b)) in banded.iter().zip(&step).enumerate() {

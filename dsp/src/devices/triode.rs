@@ -16,6 +16,7 @@
 //! Hermite interpolation with three conditions at each end), which reaches 5.5e-11 with h = 1/12.
 //! Memory: 67 KB for the grid table, 67 + 21 KB for each distinct Koren set in use.
 
+use crate::arith::{Arith, Separate};
 use crate::fastmath;
 use serde::{Deserialize, Serialize};
 use std::sync::{Mutex, OnceLock, PoisonError};
@@ -126,6 +127,45 @@ impl Segment {
         self.eval_portable(t)
     }
 
+    /// (p(t), dp/dx) with `A`'s multiply-add: the packed evaluation for separate ones, the portable order
+    /// with each multiply-add fused for fused ones.
+    #[inline(always)]
+    fn eval_as<A: Arith>(&self, t: f64) -> (f64, f64) {
+        if !A::FUSED {
+            return self.eval(t);
+        }
+        #[cfg(target_arch = "x86_64")]
+        // SAFETY: the fused copy runs only where the processor has FMA (`arith::fused_available`), inlined
+        // into code compiled for it; each load reads the two f64 of one 16-byte aligned pair.
+        unsafe {
+            use std::arch::x86_64::{
+                _mm_cvtsd_f64, _mm_fmadd_pd, _mm_load_pd, _mm_mul_pd, _mm_set1_pd, _mm_unpackhi_pd,
+            };
+            let tt = _mm_set1_pd(t);
+            let t2 = _mm_mul_pd(tt, tt);
+            let p = |k: usize| _mm_load_pd(self.pairs[k].as_ptr());
+            let low = _mm_fmadd_pd(p(3), tt, p(4));
+            let high = _mm_fmadd_pd(p(1), tt, p(2));
+            let acc = _mm_fmadd_pd(t2, _mm_fmadd_pd(t2, p(0), high), low);
+            (
+                A::madd(_mm_cvtsd_f64(acc), t, self.c0),
+                _mm_cvtsd_f64(_mm_unpackhi_pd(acc, acc)),
+            )
+        }
+        #[cfg(not(target_arch = "x86_64"))]
+        {
+            let t2 = t * t;
+            let mut acc = [0.0; 2];
+            for (j, acc) in acc.iter_mut().enumerate() {
+                let p = |k: usize| self.pairs[k][j];
+                let low = A::madd(p(3), t, p(4));
+                let high = A::madd(p(1), t, p(2));
+                *acc = A::madd(t2, A::madd(t2, p(0), high), low);
+            }
+            (A::madd(acc[0], t, self.c0), acc[1])
+        }
+    }
+
     /// (p(t), dp/dx), one lane at a time.
     #[cfg_attr(target_arch = "x86_64", allow(dead_code))]
     #[inline(always)]
@@ -221,7 +261,7 @@ impl SoftplusPowTable {
 
     /// (value, slope) at pos = (z - SP_START) SP_PER_UNIT inside the table; None outside it and for NaN.
     #[inline(always)]
-    fn lookup(self, pos: f64) -> Option<(f64, f64)> {
+    fn lookup<A: Arith>(self, pos: f64) -> Option<(f64, f64)> {
         const HALF: f64 = SP_SEGMENTS as f64 / 2.0;
         // False for NaN as well.
         let inside = (pos - HALF).abs() < HALF;
@@ -233,7 +273,7 @@ impl SoftplusPowTable {
         let shifted = (pos - 0.5) + SHIFT;
         let idx = (shifted.to_bits() as u32 as usize).min(SP_SEGMENTS - 1);
         let t = pos - (shifted - SHIFT);
-        Some(self.segments[idx].eval(t))
+        Some(self.segments[idx].eval_as::<A>(t))
     }
 }
 
@@ -280,7 +320,7 @@ impl PowerTable {
 
     /// (A, dA/dVpk) inside the table; None outside it, for Vpk <= 0 and for NaN.
     #[inline(always)]
-    fn lookup(self, vpk: f64) -> Option<(f64, f64)> {
+    fn lookup<A: Arith>(self, vpk: f64) -> Option<(f64, f64)> {
         const FRAC_BITS: u32 = 52 - A_BITS;
         let bits = vpk.to_bits();
         // Exponent and top mantissa bits; negative, zero, too small or too large values (and NaN) wrap or
@@ -290,7 +330,7 @@ impl PowerTable {
             return None;
         }
         let t = (bits & ((1 << FRAC_BITS) - 1)) as i64 as f64 * (1.0 / (1u64 << FRAC_BITS) as f64);
-        Some(self.segments[idx as usize].eval(t))
+        Some(self.segments[idx as usize].eval_as::<A>(t))
     }
 }
 
@@ -417,12 +457,12 @@ impl Triode {
     /// Grid current Ig = Gg (ln(1 + exp(Cg Vgk)) / Cg)^xi + Ig0 (Dempwolf and Zoelzer, DAFx-11), and dIg/dVgk.
     #[inline]
     pub fn grid_current(vgk: f64) -> (f64, f64) {
-        Self::grid_current_in(grid_table(), vgk)
+        Self::grid_current_in::<Separate>(grid_table(), vgk)
     }
 
     #[inline(always)]
-    fn grid_current_in(table: SoftplusPowTable, vgk: f64) -> (f64, f64) {
-        match table.lookup(vgk * GRID_POS_SCALE + GRID_POS_OFFSET) {
+    fn grid_current_in<A: Arith>(table: SoftplusPowTable, vgk: f64) -> (f64, f64) {
+        match table.lookup::<A>(A::madd(vgk, GRID_POS_SCALE, GRID_POS_OFFSET)) {
             Some(found) => found,
             None => Self::grid_current_outside(vgk),
         }
@@ -455,38 +495,41 @@ impl Triode {
     #[inline(always)]
     pub fn currents(&self, vpk: f64, vgk: f64) -> TriodeCurrents {
         let q = 1.0 / (self.kvb + vpk * vpk).sqrt();
-        self.currents_with_q(vpk, vgk, q)
+        self.currents_with_q::<Separate>(vpk, vgk, q)
     }
 
     /// `currents` of two triodes at once: both Q = 1 / sqrt(kvb + Vpk^2) come from one packed square root and
     /// one packed division (the processor's divider is slow and shared), with the same correctly rounded
     /// results as two scalar ones.
     #[inline(always)]
-    pub fn currents_of_two(
+    pub fn currents_of_two<A: Arith>(
         (first, first_vpk, first_vgk): (&Triode, f64, f64),
         (second, second_vpk, second_vgk): (&Triode, f64, f64),
     ) -> [TriodeCurrents; 2] {
         let radicands = [
-            first.kvb + first_vpk * first_vpk,
-            second.kvb + second_vpk * second_vpk,
+            A::madd(first_vpk, first_vpk, first.kvb),
+            A::madd(second_vpk, second_vpk, second.kvb),
         ];
         let [first_q, second_q] = crate::packed::reciprocal_square_roots(radicands);
         [
-            first.currents_with_q(first_vpk, first_vgk, first_q),
-            second.currents_with_q(second_vpk, second_vgk, second_q),
+            first.currents_with_q::<A>(first_vpk, first_vgk, first_q),
+            second.currents_with_q::<A>(second_vpk, second_vgk, second_q),
         ]
     }
 
     /// `currents` given Q = 1 / sqrt(kvb + Vpk^2).
     #[inline(always)]
-    fn currents_with_q(&self, vpk: f64, vgk: f64, q: f64) -> TriodeCurrents {
-        let (grid, grid_dvgk) = Self::grid_current_in(self.grid, vgk);
-        let Some((a, da)) = self.power.lookup(vpk) else {
+    fn currents_with_q<A: Arith>(&self, vpk: f64, vgk: f64, q: f64) -> TriodeCurrents {
+        let (grid, grid_dvgk) = Self::grid_current_in::<A>(self.grid, vgk);
+        let Some((a, da)) = self.power.lookup::<A>(vpk) else {
             return self.currents_closed_form(vpk, vgk, q, grid, grid_dvgk);
         };
         // pos of the S table and its derivative by Vgk (S is tabulated with its slope per unit of pos).
         let dpos = self.pos_scale * q;
-        let (s, ds) = match self.softplus.lookup(self.pos_offset + vgk * dpos) {
+        let (s, ds) = match self
+            .softplus
+            .lookup::<A>(A::madd(vgk, dpos, self.pos_offset))
+        {
             Some(found) => found,
             None => self.softplus_outside(vgk, q),
         };
@@ -496,7 +539,7 @@ impl Triode {
         let a_ds = a * ds;
         TriodeCurrents {
             plate: a * s,
-            plate_dvpk: da * s - a_ds * dpos_dvpk_by_dvgk,
+            plate_dvpk: A::madd(da, s, -(a_ds * dpos_dvpk_by_dvgk)),
             plate_dvgk: a_ds * dpos,
             grid,
             grid_dvgk,

@@ -1,5 +1,7 @@
 //! Zener diode: exponential forward and breakdown junction with series resistance, and the antiseries pair.
 
+use crate::arith::{Arith, Separate};
+
 /// Thermal voltage used throughout (V), BRIEF section 4.
 pub const THERMAL_VOLTAGE: f64 = 0.025852;
 /// Saturation current of the forward junction (A), BRIEF section 4.
@@ -319,7 +321,7 @@ impl PairTable {
     /// |s| < TABLE_HALF_SPAN: straight-line code on one interval and one grid point of the table, each pair
     /// of lanes running the same operations.
     #[inline(always)]
-    fn inside(&self, s: f64) -> ([f64; 2], [f64; 2], [f64; 2]) {
+    fn inside<A: Arith>(&self, s: f64) -> ([f64; 2], [f64; 2], [f64; 2]) {
         // pos in (0, TABLE_INTERVALS) for |s| < TABLE_HALF_SPAN (s + 32 is exact near -32 and stays below 64).
         let pos = (s + TABLE_HALF_SPAN) * TABLE_INV_STEP;
         // floor(pos) by the round-to-nearest shift trick on pos - 1/2; the mask only guards the indexing.
@@ -333,7 +335,11 @@ impl PairTable {
         let cubic = |c: &[[f64; 2]; 4]| -> [f64; 2] {
             let mut y = [0.0; 2];
             for j in 0..2 {
-                y[j] = (c[0][j] + c[1][j] * t) + t2 * (c[2][j] + c[3][j] * t);
+                y[j] = A::madd(
+                    t2,
+                    A::madd(c[3][j], t, c[2][j]),
+                    A::madd(c[1][j], t, c[0][j]),
+                );
             }
             y
         };
@@ -357,13 +363,17 @@ impl PairTable {
         let mut series = [0.0; 2];
         for j in 0..2 {
             series[j] = scale[j]
-                * ((TAYLOR[0][j] + d2 * TAYLOR[1][j]) + d4 * (TAYLOR[2][j] + d2 * TAYLOR[3][j]));
+                * A::madd(
+                    d4,
+                    A::madd(d2, TAYLOR[3][j], TAYLOR[2][j]),
+                    A::madd(d2, TAYLOR[1][j], TAYLOR[0][j]),
+                );
         }
         let [sinh_d, cosh_d] = series;
         let [sinh_k, cosh_k] = base.sinh_cosh;
         let current = [
-            sinh_k * cosh_d + cosh_k * sinh_d,
-            cosh_k * cosh_d + sinh_k * sinh_d,
+            A::madd(sinh_k, cosh_d, cosh_k * sinh_d),
+            A::madd(cosh_k, cosh_d, sinh_k * sinh_d),
         ];
         (pair, negative, current)
     }
@@ -464,18 +474,24 @@ impl ZenerPair {
     /// A NaN s reads as the table's lower end, and |s| is held at 700 at most, so the results stay finite.
     #[inline(always)]
     pub fn port(&self, s: f64) -> PairPoint {
+        self.port_as::<Separate>(s)
+    }
+
+    /// `port` with `A`'s multiply-add.
+    #[inline(always)]
+    pub(crate) fn port_as<A: Arith>(&self, s: f64) -> PairPoint {
         match &self.combined {
             Some(table) if s.abs() < TABLE_HALF_SPAN => {
-                let (pair, negative, [current, current_ds]) = table.inside(s);
+                let (pair, negative, [current, current_ds]) = table.inside::<A>(s);
                 let (r, rn) = (self.series_resistance, self.negative_rs);
                 PairPoint {
-                    volts: pair[0] + r * current,
-                    volts_ds: pair[1] + r * current_ds,
+                    volts: A::madd(r, current, pair[0]),
+                    volts_ds: A::madd(r, current_ds, pair[1]),
                     current,
                     current_ds,
                     positive_part_volts: 0.0,
-                    negative_part_volts: negative[0] + rn * current,
-                    negative_part_volts_ds: negative[1] + rn * current_ds,
+                    negative_part_volts: A::madd(rn, current, negative[0]),
+                    negative_part_volts_ds: A::madd(rn, current_ds, negative[1]),
                 }
             }
             _ => self.port_outside(s),
