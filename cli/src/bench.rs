@@ -136,6 +136,14 @@ pub fn run(args: BenchArgs) -> Result<(), String> {
         );
     }
     println!(
+        "(model copy: {}; BREAKDOWN_SEPARATE_MADD=1 times the other)",
+        if breakdown_dsp::arith::fused_available() {
+            "fused multiply-add, as this processor has FMA"
+        } else {
+            "separate multiply and add"
+        }
+    );
+    println!(
         "(targets: at least 50x real time at the default 4x quality, at least 300x at 1x; one core, this machine)"
     );
     Ok(())
