@@ -556,6 +556,24 @@ mod tests {
     use super::*;
     use crate::arith::Fused;
 
+    /// Gain full up, level half way, at switch `position`.
+    fn flat_out(position: usize) -> Settings {
+        Settings {
+            gain: 1.0,
+            level: 0.5,
+            position,
+        }
+    }
+
+    /// `samples` of a 220 Hz tone at 0.9 of full scale, 48 kHz: drives the reference stage into both clamps.
+    fn hard_tone(samples: usize) -> Vec<f32> {
+        (0..samples)
+            .map(|n| {
+                (0.9 * (2.0 * std::f64::consts::PI * 220.0 * n as f64 / 48_000.0).sin()) as f32
+            })
+            .collect()
+    }
+
     /// The fused and separate multiply-add copies of the model are the same model: driven hard into both
     /// clamps, at 1x and 4x, their clamp-node and listening outputs differ by roundings only.
     #[test]
@@ -567,17 +585,7 @@ mod tests {
             return;
         }
         let circuit = Circuit::reference();
-        let settings = Settings {
-            gain: 1.0,
-            level: 0.5,
-            position: 2,
-        };
-        let input: Vec<f32> = (0..4800)
-            .map(|n| {
-                let t = n as f64 / 48_000.0;
-                (0.9 * (2.0 * std::f64::consts::PI * 220.0 * t).sin()) as f32
-            })
-            .collect();
+        let (settings, input) = (flat_out(2), hard_tone(4800));
         for quality in [Quality::X1, Quality::X4] {
             let mut separate = Engine::new(&circuit, 48_000.0, quality, settings).unwrap();
             let mut fused = separate.clone();
@@ -617,16 +625,7 @@ mod tests {
     /// passage); switching probes never touches the model, so the listening output is the same throughout.
     #[test]
     fn probe_switched_on_late_is_exact_after_decimator_memory() {
-        let settings = Settings {
-            gain: 1.0,
-            level: 0.5,
-            position: 1,
-        };
-        let input: Vec<f32> = (0..3000)
-            .map(|n| {
-                (0.9 * (2.0 * std::f64::consts::PI * 220.0 * n as f64 / 48_000.0).sin()) as f32
-            })
-            .collect();
+        let (settings, input) = (flat_out(1), hard_tone(3000));
         for quality in Quality::ALL {
             let mut always =
                 Engine::new(&Circuit::reference(), 48_000.0, quality, settings).unwrap();
@@ -662,11 +661,7 @@ mod tests {
     #[test]
     fn meters_match_their_definitions() {
         let circuit = Circuit::reference();
-        let settings = Settings {
-            gain: 1.0,
-            level: 0.5,
-            position: 2,
-        };
+        let settings = flat_out(2);
         let mut engine = Engine::new(&circuit, 48_000.0, Quality::X2, settings).unwrap();
         engine.set_active_probes(&[Probe::Listen]);
         let mut twin = engine.clone();
