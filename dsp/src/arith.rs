@@ -25,8 +25,9 @@ impl Arith for Separate {
     }
 }
 
-/// a b + c fused (one rounding). Only for code compiled with the FMA instructions enabled (see `fused_available`):
-/// elsewhere `f64::mul_add` is a slow library call.
+/// a b + c fused (one rounding), for code compiled with the FMA instructions enabled (elsewhere `f64::mul_add`
+/// is a slow library call). The model's fused copy also uses the packed FMA instruction directly, so the crate
+/// runs it only where `fused_available` says the processor has it.
 #[derive(Clone, Copy, Debug)]
 pub struct Fused;
 

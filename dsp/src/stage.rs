@@ -695,9 +695,10 @@ impl Stage {
         self.process_as::<Separate>(grid_source_volts)
     }
 
-    /// `process` with `A`'s multiply-add (see `arith`; `Fused` only in code compiled for it).
+    /// `process` with `A`'s multiply-add (see `arith`). `Fused` only where the processor has FMA: its table
+    /// polynomials use the packed FMA instruction.
     #[inline(always)]
-    pub fn process_as<A: Arith>(&mut self, grid_source_volts: f64) -> &StageProbe {
+    pub(crate) fn process_as<A: Arith>(&mut self, grid_source_volts: f64) -> &StageProbe {
         self.grid_feed.volts = grid_source_volts;
         self.step::<A>(MAX_ITERATIONS);
         &self.probe
