@@ -120,66 +120,54 @@ impl Segment {
         }
     }
 
-    /// (p(t), dp/dx).
-    #[cfg(not(target_arch = "x86_64"))]
-    #[inline(always)]
-    fn eval(&self, t: f64) -> (f64, f64) {
-        self.eval_portable(t)
-    }
-
-    /// (p(t), dp/dx) with `A`'s multiply-add: the packed evaluation for separate ones, the portable order
-    /// with each multiply-add fused for fused ones.
+    /// (p(t), dp/dx) with `A`'s multiply-add: on x86-64 the packed evaluation, with packed fused multiply-adds
+    /// for the fused copy; elsewhere the portable one.
     #[inline(always)]
     fn eval_as<A: Arith>(&self, t: f64) -> (f64, f64) {
-        if !A::FUSED {
-            return self.eval(t);
-        }
         #[cfg(target_arch = "x86_64")]
-        // SAFETY: the fused copy runs only where the processor has FMA (`arith::fused_available`), inlined
-        // into code compiled for it; each load reads the two f64 of one 16-byte aligned pair.
-        unsafe {
-            use std::arch::x86_64::{
-                _mm_cvtsd_f64, _mm_fmadd_pd, _mm_load_pd, _mm_mul_pd, _mm_set1_pd, _mm_unpackhi_pd,
-            };
-            let tt = _mm_set1_pd(t);
-            let t2 = _mm_mul_pd(tt, tt);
-            let p = |k: usize| _mm_load_pd(self.pairs[k].as_ptr());
-            let low = _mm_fmadd_pd(p(3), tt, p(4));
-            let high = _mm_fmadd_pd(p(1), tt, p(2));
-            let acc = _mm_fmadd_pd(t2, _mm_fmadd_pd(t2, p(0), high), low);
-            (
-                A::madd(_mm_cvtsd_f64(acc), t, self.c0),
-                _mm_cvtsd_f64(_mm_unpackhi_pd(acc, acc)),
-            )
+        {
+            if !A::FUSED {
+                return self.eval(t);
+            }
+            // SAFETY: the fused copy runs only where the processor has FMA (`arith::fused_available`), inlined
+            // into code compiled for it; each load reads the two f64 of one 16-byte aligned pair.
+            unsafe {
+                use std::arch::x86_64::{
+                    _mm_cvtsd_f64, _mm_fmadd_pd, _mm_load_pd, _mm_mul_pd, _mm_set1_pd,
+                    _mm_unpackhi_pd,
+                };
+                let tt = _mm_set1_pd(t);
+                let t2 = _mm_mul_pd(tt, tt);
+                let p = |k: usize| _mm_load_pd(self.pairs[k].as_ptr());
+                let low = _mm_fmadd_pd(p(3), tt, p(4));
+                let high = _mm_fmadd_pd(p(1), tt, p(2));
+                let acc = _mm_fmadd_pd(t2, _mm_fmadd_pd(t2, p(0), high), low);
+                (
+                    A::madd(_mm_cvtsd_f64(acc), t, self.c0),
+                    _mm_cvtsd_f64(_mm_unpackhi_pd(acc, acc)),
+                )
+            }
         }
         #[cfg(not(target_arch = "x86_64"))]
         {
-            let t2 = t * t;
-            let mut acc = [0.0; 2];
-            for (j, acc) in acc.iter_mut().enumerate() {
-                let p = |k: usize| self.pairs[k][j];
-                let low = A::madd(p(3), t, p(4));
-                let high = A::madd(p(1), t, p(2));
-                *acc = A::madd(t2, A::madd(t2, p(0), high), low);
-            }
-            (A::madd(acc[0], t, self.c0), acc[1])
+            self.eval_portable::<A>(t)
         }
     }
 
-    /// (p(t), dp/dx), one lane at a time.
+    /// (p(t), dp/dx), one lane at a time, with `A`'s multiply-add.
     #[cfg_attr(target_arch = "x86_64", allow(dead_code))]
     #[inline(always)]
-    fn eval_portable(&self, t: f64) -> (f64, f64) {
+    fn eval_portable<A: Arith>(&self, t: f64) -> (f64, f64) {
         // Estrin's scheme: (P4 + P3 t) + t^2 ((P2 + P1 t) + t^2 P0), a shorter chain than Horner's.
         let t2 = t * t;
         let mut acc = [0.0; 2];
         for (j, acc) in acc.iter_mut().enumerate() {
             let p = |k: usize| self.pairs[k][j];
-            let low = p(4) + p(3) * t;
-            let high = p(2) + p(1) * t;
-            *acc = low + t2 * (high + t2 * p(0));
+            let low = A::madd(p(3), t, p(4));
+            let high = A::madd(p(1), t, p(2));
+            *acc = A::madd(t2, A::madd(t2, p(0), high), low);
         }
-        (acc[0] * t + self.c0, acc[1])
+        (A::madd(acc[0], t, self.c0), acc[1])
     }
 
     /// (p(t), dp/dx): the same operations in the same order as the portable version, two lanes at a time.
@@ -737,7 +725,9 @@ mod tests {
     #[test]
     fn packed_and_portable_segment_evaluations_agree() {
         // The portable evaluation (used off x86-64) performs the same IEEE operations in the same order, so
-        // the two agree bit for bit; checked over every segment of the tables.
+        // the two agree bit for bit; checked over every segment of the tables, for the separate copy and,
+        // where the processor has FMA, the fused one (a fused multiply-add rounds once, packed or not).
+        let fused = crate::arith::fused_available();
         let triode = TubeType::Au7.triode();
         let tables: [&[Segment]; 3] = [
             &triode.power.segments[..],
@@ -748,9 +738,23 @@ mod tests {
             for segment in segments {
                 for k in 0..=16 {
                     let t = k as f64 / 16.0 + 1e-3;
-                    let (a, b) = (segment.eval(t), segment.eval_portable(t));
+                    let (a, b) = (
+                        segment.eval_as::<Separate>(t),
+                        segment.eval_portable::<Separate>(t),
+                    );
                     assert_eq!(a.0.to_bits(), b.0.to_bits());
                     assert_eq!(a.1.to_bits(), b.1.to_bits());
+                    if fused {
+                        use crate::arith::Fused;
+                        let (a, b) = (
+                            segment.eval_as::<Fused>(t),
+                            segment.eval_portable::<Fused>(t),
+                        );
+                        assert_eq!(
+                            (a.0.to_bits(), a.1.to_bits()),
+                            (b.0.to_bits(), b.1.to_bits())
+                        );
+                    }
                 }
             }
         }
