@@ -488,9 +488,9 @@ impl Triode {
 
     /// `currents` of two triodes at once: both Q = 1 / sqrt(kvb + Vpk^2) come from one packed square root and
     /// one packed division (the processor's divider is slow and shared), with the same correctly rounded
-    /// results as two scalar ones.
+    /// results as two scalar ones. Crate-private: `A = Fused` needs FMA, which only the engine checks for.
     #[inline(always)]
-    pub fn currents_of_two<A: Arith>(
+    pub(crate) fn currents_of_two<A: Arith>(
         (first, first_vpk, first_vgk): (&Triode, f64, f64),
         (second, second_vpk, second_vgk): (&Triode, f64, f64),
     ) -> [TriodeCurrents; 2] {
