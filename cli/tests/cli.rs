@@ -507,7 +507,7 @@ fn bad_input_gives_one_clear_line_and_no_file() {
         (vec!["--input", g, "--set", "position=3"], "position 3"),
         (vec!["--input", g, "--set", "gain"], "name=value"),
         (vec!["--input", g, "--set", "bias=2"], "bias"),
-        (vec!["--input", g, "--set", "gain=1.5"], "0 to 1"),
+        (vec!["--input", g, "--set", "gain=1.5"], "must be at most 1"),
         (vec!["--input", g, "--set", "level=loud"], "not a number"),
         (vec!["--input", g, "--quality", "3"], "--quality"),
         (vec!["--input", g, "--probe", "plate"], "plate"),

@@ -27,6 +27,7 @@ fn main() {
                 gain,
                 level: 0.5,
                 position,
+                ..Default::default()
             },
         )
         .unwrap();

@@ -288,9 +288,12 @@ impl Engine {
             down: std::array::from_fn(|_| Downsampler::new(quality)),
             high_in: [0.0; 16],
             high_out: [[0.0; 16]; 6],
-            input_volts_per_unit: circuit.drive.volts_at_full_scale,
+            input_volts_per_unit: circuit.input.volts_at_full_scale,
             listen_units_per_volt: 1.0 / circuit.listen.volts_at_full_scale,
-            gain_law: circuit.gain_stage.gain_pot_law,
+            gain_law: match circuit.gain_control() {
+                crate::circuit::GainControl::Attenuator(law) => law,
+                crate::circuit::GainControl::PreampVolume(_) => PotLaw::Linear,
+            },
             gain: Glide::new(settings.gain, sample_rate),
             law_gain: f64::NAN,
             attenuation: 0.0,
@@ -562,6 +565,7 @@ mod tests {
             gain: 1.0,
             level: 0.5,
             position,
+            ..Default::default()
         }
     }
 

@@ -2,6 +2,11 @@
 
 use crate::devices::zener::ZenerDatasheet;
 
+/// The Vz range of every part Breakdown accepts (V): the span of the two families below (1N52xxB from 2.4 V,
+/// 1N47xxA and 1N52xxB up to 200 V). A part given by Vz alone takes its knee data from the chosen family's table
+/// (interpolated between rows, the end row beyond the family's own range).
+pub const ZENER_VOLTS_RANGE: (f64, f64) = (2.4, 200.0);
+
 /// One row of a family datasheet table.
 #[derive(Clone, Copy, Debug, PartialEq)]
 pub struct FamilyRow {

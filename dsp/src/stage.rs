@@ -553,7 +553,10 @@ impl Stage {
             ),
             level_network: Series::new(
                 Resistor::new(0.0),
-                Parallel::new(Resistor::new(c.level_pot), Resistor::new(c.load_resistor)),
+                Parallel::new(
+                    Resistor::new(c.level_pot),
+                    Resistor::new(c.load_resistor.unwrap_or(1e12)),
+                ),
             ),
             devices: StageDevices {
                 gain_valve: g.tube.triode(),

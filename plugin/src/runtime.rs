@@ -93,7 +93,7 @@ impl Default for Controls {
 /// The reference circuit with a single switch position holding `pair`.
 pub fn slot_circuit(pair: Option<(f64, f64)>, calibration: f64) -> Circuit {
     let mut circuit = Circuit::reference();
-    circuit.drive.volts_at_full_scale = calibration;
+    circuit.input.volts_at_full_scale = calibration;
     circuit.clamp.position = vec![SwitchPosition {
         name: "compared".into(),
         positive: pair.map(|p| ZenerSpec::volts(p.0)),
@@ -123,6 +123,7 @@ impl Built {
             gain: gain.clamp(0.0, 1.0),
             level: level.clamp(0.0, 1.0),
             position: 0,
+            ..Default::default()
         };
         let mut engine = Engine::new(&circuit, sample_rate, spec.quality, settings)
             .map_err(|e| e.to_string())?;

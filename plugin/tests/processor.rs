@@ -109,6 +109,7 @@ fn default_output_equals_the_dsp_engine() {
             gain: params.gain.value() as f64,
             level: params.level.value() as f64,
             position: 1,
+            ..Default::default()
         };
         let mut engine = Engine::new(&Circuit::reference(), rate, Quality::X4, settings).unwrap();
         assert_eq!(engine.latency(), latency);
@@ -182,6 +183,7 @@ fn switching_positions_crossfades_between_the_two_outputs() {
             gain: 0.8,
             level: 0.5,
             position,
+            ..Default::default()
         };
         let mut e = Engine::new(&Circuit::reference(), rate, Quality::X4, settings).unwrap();
         let mut y = vec![0.0f32; input.len()];

@@ -41,6 +41,7 @@ fn settings(position: usize) -> Settings {
         gain: 1.0,
         level: 0.5,
         position,
+        ..Default::default()
     }
 }
 

@@ -127,7 +127,7 @@ fn read_reference(path: &Path) -> (Vec<f64>, Vec<f64>) {
 /// The case's sine at the jack as 48 kHz samples in full-scale units.
 fn input_signal(case: &Case, samples: usize) -> Vec<f32> {
     let s = &case.file.signal;
-    let scale = s.amplitude_volts / case.circuit.drive.volts_at_full_scale;
+    let scale = s.amplitude_volts / case.circuit.input.volts_at_full_scale;
     (0..samples)
         .map(|n| {
             let t = n as f64 / SAMPLE_RATE;

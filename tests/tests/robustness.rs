@@ -318,7 +318,9 @@ fn bad_audio_never_gives_non_finite_output_and_the_model_recovers() {
     let level = Settings::default().level;
     let (top, bottom) = c.level_pot_law.legs(c.level_pot, level);
     let tau = c.coupling_cap
-        * (c.feed_resistor + top + bottom * c.load_resistor / (bottom + c.load_resistor));
+        * (c.feed_resistor
+            + top
+            + bottom * c.load_resistor.unwrap() / (bottom + c.load_resistor.unwrap()));
     type Bad = Box<dyn Fn(usize, f32) -> f32>;
     let cases: Vec<(&str, Bad)> = vec![
         ("NaN", Box::new(|_, _| f32::NAN)),

@@ -247,7 +247,7 @@ pub fn suggest(a: SuggestArgs) -> Result<(), String> {
     let stimulus = match (&a.di, a.input_volts) {
         (Some(p), _) => {
             check_volts("--seconds", a.seconds, 3600.0)?;
-            di_stimulus(p, rig.circuit.drive.volts_at_full_scale, a.seconds)?
+            di_stimulus(p, rig.circuit.input.volts_at_full_scale, a.seconds)?
         }
         (None, Some(v)) => {
             check_volts("--input-volts", v, breakdown_dsp::engine::INPUT_LIMIT_VOLTS)?;

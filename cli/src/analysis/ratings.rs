@@ -209,7 +209,10 @@ pub fn ratings_from_meters(
 pub fn clamp_network_resistance(circuit: &Circuit, level: f64) -> f64 {
     let c = &circuit.clamp;
     let (top, bottom) = c.level_pot_law.legs(c.level_pot, level);
-    let lower = bottom * c.load_resistor / (bottom + c.load_resistor);
+    let lower = match c.load_resistor {
+        Some(load) => bottom * load / (bottom + load),
+        None => bottom,
+    };
     match c.placement {
         breakdown_dsp::Placement::AcrossPot => top + lower,
         breakdown_dsp::Placement::AtWiper => lower,

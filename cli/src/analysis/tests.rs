@@ -19,6 +19,7 @@ fn rig(position: usize, gain: f64, quality: Quality) -> Rig {
         gain,
         level: 0.5,
         position,
+        ..Default::default()
     };
     Rig::new(Circuit::reference(), settings, quality).unwrap()
 }
@@ -169,6 +170,7 @@ fn direct_render(
         gain,
         level: 0.5,
         position: circuit.clamp.position.len() - 1,
+        ..Default::default()
     };
     let mut e = Engine::new(circuit, RATE, quality, settings).unwrap();
     e.set_input_calibration(1.0);
@@ -273,6 +275,7 @@ fn impossible_goals_are_refused_naming_the_limit() {
         gain,
         level: 0.5,
         position: 0,
+        ..Default::default()
     };
     let mut e = Engine::new(&Circuit::reference(), RATE, Quality::X2, settings).unwrap();
     e.set_input_calibration(1.0);
@@ -485,6 +488,7 @@ fn before_valve_suggestion_clamps_before_any_valve_limits() {
             gain,
             level: 0.5,
             position: circuit.clamp.position.len() - 1,
+            ..Default::default()
         },
         Quality::X1,
     )

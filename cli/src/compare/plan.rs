@@ -436,7 +436,7 @@ pub fn parse(path: &Path, text: &str, output_override: Option<&Path>) -> Result<
         None => DEFAULT_TARGET_LUFS,
     };
     let (mut volts_at_full_scale, mut tone_peak_volts) =
-        (circuit.drive.volts_at_full_scale, DEFAULT_TONE_PEAK_VOLTS);
+        (circuit.input.volts_at_full_scale, DEFAULT_TONE_PEAK_VOLTS);
     if let Some(input) = &raw.input {
         if let Some(v) = &input.volts_at_full_scale {
             volts_at_full_scale = range_of(&ctx, "input.volts_at_full_scale", v, 1e-3, 100.0, "V")?;
@@ -457,7 +457,7 @@ pub fn parse(path: &Path, text: &str, output_override: Option<&Path>) -> Result<
             },
         );
     }
-    circuit.drive.volts_at_full_scale = volts_at_full_scale;
+    circuit.input.volts_at_full_scale = volts_at_full_scale;
 
     let (mut segment_seconds, mut marker) = (DEFAULT_SEGMENT_SECONDS, Marker::Tick);
     if let Some(ab) = &raw.ab {
@@ -593,6 +593,7 @@ pub fn parse(path: &Path, text: &str, output_override: Option<&Path>) -> Result<
                 gain,
                 level,
                 position,
+                ..Default::default()
             },
             quality,
             parts,

@@ -210,11 +210,12 @@ impl Default for PluginSettings {
 /// What the `breakdown-dsp` model renders for `input` at the wiper listening point (latency removed).
 pub fn reference_render(rate: f64, s: PluginSettings, input: &[f32]) -> (Vec<f32>, usize) {
     let mut circuit = Circuit::reference();
-    circuit.drive.volts_at_full_scale = s.input_calibration;
+    circuit.input.volts_at_full_scale = s.input_calibration;
     let settings = Settings {
         gain: s.gain as f64,
         level: s.level as f64,
         position: s.position,
+        ..Default::default()
     };
     let mut engine =
         Engine::new(&circuit, rate, s.quality, settings).expect("reference circuit builds");
