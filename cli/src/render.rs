@@ -88,7 +88,7 @@ fn one_line(message: &str) -> String {
 /// Read and validate a circuit file, or the built-in reference circuit.
 pub fn load_circuit(path: Option<&Path>) -> Result<Circuit, String> {
     let Some(path) = path else {
-        return Ok(Circuit::reference());
+        return Ok(Circuit::builtin());
     };
     let shown = path.display();
     let text = std::fs::read_to_string(path).map_err(|e| {
@@ -285,9 +285,7 @@ pub fn run(args: RenderArgs) -> Result<(), String> {
     // The parts' load over this render (every render answers "do these parts survive?").
     let idle = Engine::new(&job.circuit, input.rate as f64, job.quality, job.settings)
         .map_err(|e| e.0)?
-        .stage()
-        .probe()
-        .to_owned();
+        .readout();
     for (channel, m) in meters.iter().enumerate() {
         let r = ratings::ratings_from_meters(
             m,

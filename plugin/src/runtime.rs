@@ -92,7 +92,7 @@ impl Default for Controls {
 
 /// The reference circuit with a single switch position holding `pair`.
 pub fn slot_circuit(pair: Option<(f64, f64)>, calibration: f64) -> Circuit {
-    let mut circuit = Circuit::reference();
+    let mut circuit = Circuit::builtin();
     circuit.input.volts_at_full_scale = calibration;
     circuit.clamp.position = vec![SwitchPosition {
         name: "compared".into(),
@@ -499,7 +499,7 @@ impl Processor {
     fn publish_pair(&self, slot: usize) {
         let r = &self.shared.slots[slot];
         let built = &self.slots[slot].current;
-        let (tp, tn) = match built.engines[0].stage().pair(0) {
+        let (tp, tn) = match built.engines[0].model().pair(0) {
             Some(pair) if !pair.is_open() => {
                 let (p, n) = pair.thresholds_at(CLAMPED_CURRENT);
                 (p as f32, n as f32)

@@ -2,7 +2,7 @@
 //! the jack, and one render that returns the meters over a measuring window plus the wiper level.
 
 use breakdown_dsp::circuit::{SwitchPosition, ZenerSpec};
-use breakdown_dsp::{Circuit, Engine, Meters, Quality, Settings, StageProbe};
+use breakdown_dsp::{Circuit, Engine, Meters, Quality, Readout, Settings};
 use std::f64::consts::PI;
 
 /// Host sample rate of every analysis render (Hz).
@@ -135,7 +135,7 @@ impl Stimulus {
 #[derive(Clone, Copy, Debug)]
 pub struct Outcome {
     pub meters: Meters,
-    pub idle: StageProbe,
+    pub idle: Readout,
     /// RMS of the level pot wiper over the measuring window (V).
     pub wiper_rms: f64,
     /// RMS of the clamp node over the measuring window (V).
@@ -155,7 +155,7 @@ impl Outcome {
 /// Render `stimulus` through `rig` and measure the window. `engine` is reused when given (reset first).
 pub fn run_with(engine: &mut Engine, stimulus: &Stimulus) -> Outcome {
     engine.reset();
-    let idle = *engine.stage().probe();
+    let idle = engine.readout();
     let latency = engine.latency();
     let total = stimulus.volts.len() + latency;
     let mut sum_sq = 0.0;
@@ -290,7 +290,7 @@ pub fn parse_quality(text: &str) -> Result<Quality, String> {
 /// Load `--circuit FILE` or the built-in reference circuit.
 pub fn load_circuit(path: Option<&std::path::Path>) -> Result<Circuit, String> {
     match path {
-        None => Ok(Circuit::reference()),
+        None => Ok(Circuit::builtin()),
         Some(p) => {
             let text = std::fs::read_to_string(p)
                 .map_err(|e| format!("circuit file {}: {e}", p.display()))?;

@@ -27,7 +27,7 @@
 use super::common::{checked, lin_space, log_space, parallel, run_with, Outcome, Rig, Stimulus};
 use breakdown_dsp::devices::Triode;
 use breakdown_dsp::engine::CLAMPED_CURRENT;
-use breakdown_dsp::StageProbe;
+use breakdown_dsp::Readout;
 
 /// Fraction of idle plate current below which a valve counts as cut off.
 pub const CUTOFF_FRACTION: f64 = 0.02;
@@ -113,14 +113,14 @@ pub struct Criteria {
 }
 
 impl Criteria {
-    pub fn new(grid_stopper: f64, idle: &StageProbe) -> Criteria {
+    pub fn new(grid_stopper: f64, idle: &Readout) -> Criteria {
         let (at_threshold, _) = grid_current_threshold(grid_stopper);
-        let (at_idle, _) = Triode::grid_current(idle.gain_grid_volts - idle.gain_cathode_volts);
+        let (at_idle, _) = Triode::grid_current(idle.gain_stage().grid_volts - idle.gain_stage().cathode_volts);
         Criteria {
             zener_current: CLAMPED_CURRENT,
-            gain_grid_current: idle.gain_grid_current + (at_threshold - at_idle).max(0.0),
-            gain_cutoff_current: CUTOFF_FRACTION * idle.gain_plate_current,
-            follower_cutoff_current: CUTOFF_FRACTION * idle.follower_plate_current,
+            gain_grid_current: idle.gain_stage().grid_current + (at_threshold - at_idle).max(0.0),
+            gain_cutoff_current: CUTOFF_FRACTION * idle.gain_stage().plate_current,
+            follower_cutoff_current: CUTOFF_FRACTION * idle.follower().plate_current,
         }
     }
 }
@@ -139,9 +139,9 @@ impl Flags {
         let m = &outcome.meters;
         Flags {
             zener: m.zener_peak_current > criteria.zener_current,
-            gain_grid: m.gain_grid_current_peak > criteria.gain_grid_current,
-            gain_cutoff: m.gain_plate_current_min < criteria.gain_cutoff_current,
-            follower_cutoff: m.follower_plate_current_min < criteria.follower_cutoff_current,
+            gain_grid: m.gain_stage().grid_current_peak > criteria.gain_grid_current,
+            gain_cutoff: m.gain_stage().plate_current_min < criteria.gain_cutoff_current,
+            follower_cutoff: m.follower().plate_current_min < criteria.follower_cutoff_current,
         }
     }
     pub fn has(&self, l: Limiter) -> bool {
@@ -219,7 +219,7 @@ pub fn criteria_for(rig: &Rig) -> Result<Criteria, String> {
     let engine = rig.engine()?;
     Ok(Criteria::new(
         rig.circuit.gain_stage.grid_stopper,
-        engine.stage().probe(),
+        &engine.readout(),
     ))
 }
 
@@ -248,9 +248,9 @@ fn cell_of(gain: f64, input_volts: f64, o: &Outcome, c: &Criteria) -> Cell {
         clamp_peak_negative: m.clamp_peak_negative,
         share_clamped: m.share_clamped(),
         zener_peak_current: m.zener_peak_current,
-        gain_grid_current_peak: m.gain_grid_current_peak,
-        gain_plate_current_min: m.gain_plate_current_min,
-        follower_plate_current_min: m.follower_plate_current_min,
+        gain_grid_current_peak: m.gain_stage().grid_current_peak,
+        gain_plate_current_min: m.gain_stage().plate_current_min,
+        follower_plate_current_min: m.follower().plate_current_min,
     }
 }
 

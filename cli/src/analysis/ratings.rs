@@ -10,7 +10,7 @@
 use super::common::{run, Outcome, Rig, Stimulus};
 use breakdown_dsp::circuit::ZenerSpec;
 use breakdown_dsp::parts::{Family, FAMILY_1N47XXA, FAMILY_1N52XXB};
-use breakdown_dsp::{Circuit, Meters, StageProbe};
+use breakdown_dsp::{Circuit, Meters, Readout};
 
 /// Margin verdict.
 #[derive(Clone, Copy, Debug, PartialEq, Eq)]
@@ -112,8 +112,8 @@ pub struct CapRating {
 impl CapRating {
     /// Verdict: over below the DC voltage; thin below 1.5x DC or below B+ (warm-up: the follower can conduct
     /// with the gain valve still cold, its cathode rising toward B+; common practice); ok otherwise.
-    pub fn new(farads: f64, idle: &StageProbe, supply_volts: f64, rating_volts: f64) -> CapRating {
-        let dc_volts = (idle.follower_cathode_volts - idle.clamp_volts).abs();
+    pub fn new(farads: f64, idle: &Readout, supply_volts: f64, rating_volts: f64) -> CapRating {
+        let dc_volts = (idle.follower().cathode_volts - idle.clamp_volts).abs();
         let verdict = if rating_volts < dc_volts {
             Verdict::Over
         } else if rating_volts < 1.5 * dc_volts || rating_volts < supply_volts {
@@ -143,10 +143,10 @@ pub struct Ratings {
 }
 
 /// Ratings from the meters of any render (the report code calls this with its own engine's meters):
-/// `idle` is the engine's operating point (`engine.stage().probe()` right after `Engine::new` or `reset`).
+/// `idle` is the engine's operating point (`engine.readout()` right after `Engine::new` or `reset`).
 pub fn ratings_from_meters(
     meters: &Meters,
-    idle: &StageProbe,
+    idle: &Readout,
     circuit: &Circuit,
     position: usize,
     source: RatingSource,

@@ -21,7 +21,7 @@ fn rig(position: usize, gain: f64, quality: Quality) -> Rig {
         position,
         ..Default::default()
     };
-    Rig::new(Circuit::reference(), settings, quality).unwrap()
+    Rig::new(Circuit::one_stage(), settings, quality).unwrap()
 }
 
 /// What a direct per-sample render at 1x says about each element, read from the stage's own readouts
@@ -39,11 +39,11 @@ fn direct_flags(rig: &Rig, gain: f64, volts: f64, criteria: &Criteria) -> [bool;
         if n < s.measure_from {
             continue;
         }
-        let p = e.stage().probe();
+        let p = e.readout();
         f[0] |= p.zener_current.abs() > criteria.zener_current;
-        f[1] |= p.gain_grid_current > criteria.gain_grid_current;
-        f[2] |= p.gain_plate_current < criteria.gain_cutoff_current;
-        f[3] |= p.follower_plate_current < criteria.follower_cutoff_current;
+        f[1] |= p.gain_stage().grid_current > criteria.gain_grid_current;
+        f[2] |= p.gain_stage().plate_current < criteria.gain_cutoff_current;
+        f[3] |= p.follower().plate_current < criteria.follower_cutoff_current;
     }
     f
 }
@@ -133,7 +133,7 @@ fn steady_window(signal: &[f32], from: usize) -> &[f32] {
 /// A circuit with the pasted variant text as its only clamp position besides "off": the independent path
 /// from the printed suggestion back to a render.
 fn circuit_from_variant(text: &str) -> Circuit {
-    let mut toml = Circuit::reference().to_toml();
+    let mut toml = Circuit::one_stage().to_toml();
     let body: Vec<&str> = text
         .lines()
         .filter(|l| l.starts_with("positive") || l.starts_with("negative"))
@@ -147,7 +147,7 @@ fn circuit_from_variant(text: &str) -> Circuit {
 
 /// The reference circuit with one more switch position, "probe", holding a pair of parts given by volts.
 fn with_probe_pair(positive_volts: f64, negative_volts: f64) -> Circuit {
-    let mut c = Circuit::reference();
+    let mut c = Circuit::one_stage();
     c.clamp
         .position
         .push(breakdown_dsp::circuit::SwitchPosition {
@@ -277,7 +277,7 @@ fn impossible_goals_are_refused_naming_the_limit() {
         position: 0,
         ..Default::default()
     };
-    let mut e = Engine::new(&Circuit::reference(), RATE, Quality::X2, settings).unwrap();
+    let mut e = Engine::new(&Circuit::one_stage(), RATE, Quality::X2, settings).unwrap();
     e.set_input_calibration(1.0);
     let v = e.render(&s.volts, Probe::Clamp);
     let peak = v[s.measure_from..].iter().fold(0.0f32, |m, x| m.max(*x)) as f64;

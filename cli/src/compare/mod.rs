@@ -451,7 +451,7 @@ fn variant_infos(plan: &Plan) -> Result<Vec<VariantInfo>, String> {
             let engine = Engine::new(&v.circuit, 48_000.0, v.quality, v.settings)
                 .map_err(|e| format!("variant '{}': {e}", v.name))?;
             let thresholds = engine
-                .stage()
+                .model()
                 .pair(v.settings.position)
                 .filter(|p| !p.is_open())
                 .map(|p| p.thresholds_at(THRESHOLD_CURRENT));

@@ -378,11 +378,11 @@ pub fn parse(path: &Path, text: &str, output_override: Option<&Path>) -> Result<
     // Circuit.
     let (mut circuit, circuit_label) = match &raw.circuit {
         None => (
-            Circuit::reference(),
+            Circuit::builtin(),
             "built-in reference circuit".to_string(),
         ),
         Some(c) if c.get_ref() == "builtin" || c.get_ref() == "built-in" => (
-            Circuit::reference(),
+            Circuit::builtin(),
             "built-in reference circuit".to_string(),
         ),
         Some(c) => {
@@ -679,7 +679,7 @@ mod tests {
         assert_eq!(plan.variants.len(), 2);
         assert_eq!(plan.target_lufs, DEFAULT_TARGET_LUFS);
         let asym = &plan.variants[1];
-        let reference = Circuit::reference();
+        let reference = Circuit::one_stage();
         assert_eq!(
             asym.circuit.clamp.position.len(),
             reference.clamp.position.len() + 1

@@ -209,7 +209,7 @@ impl Default for PluginSettings {
 
 /// What the `breakdown-dsp` model renders for `input` at the wiper listening point (latency removed).
 pub fn reference_render(rate: f64, s: PluginSettings, input: &[f32]) -> (Vec<f32>, usize) {
-    let mut circuit = Circuit::reference();
+    let mut circuit = Circuit::one_stage();
     circuit.input.volts_at_full_scale = s.input_calibration;
     let settings = Settings {
         gain: s.gain as f64,
