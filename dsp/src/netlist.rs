@@ -324,12 +324,14 @@ impl Netlist {
         });
         b.net.level_wiper = Builder::node_index(level_wiper);
 
-        // The tone stack, driven by the level pot's wiper (docs/model.md section 3.1).
+        // The tone stack, driven by the level pot's wiper and loading it (docs/model.md section 3.1). Nodes in
+        // the order that keeps the band narrowest (three either side of the diagonal).
         if let Some(t) = &circuit.tone_stack {
             let treble_top = b.node("treble_top");
             let slope_node = b.node("slope_node");
             let tone = b.node("tone");
             let bass_top = b.node("bass_top");
+            let middle_wiper = b.node("middle_wiper");
             let middle_top = b.node("middle_top");
             b.capacitor(
                 "tone_stack treble_cap",
@@ -343,6 +345,13 @@ impl Netlist {
                 slope_node,
                 t.slope_resistor,
             );
+            b.capacitor("tone_stack bass_cap", slope_node, bass_top, t.bass_cap);
+            b.capacitor(
+                "tone_stack middle_cap",
+                slope_node,
+                middle_wiper,
+                t.middle_cap,
+            );
             b.pot(
                 "tone_stack treble_pot",
                 (Some(treble_top), tone, Some(bass_top)),
@@ -351,26 +360,18 @@ impl Netlist {
                 Some(Knob::Treble),
                 0.5,
             );
-            b.capacitor("tone_stack bass_cap", slope_node, bass_top, t.bass_cap);
-            b.capacitor(
-                "tone_stack middle_cap",
-                slope_node,
-                middle_top,
-                t.middle_cap,
-            );
-            // Bass: a variable resistor from its top lug (bass_top) to the wiper, which is tied to middle_top.
+            // Bass: top lug and wiper joined at bass_top, so only the leg R y to middle_top is in circuit.
             b.pot(
                 "tone_stack bass_pot",
-                (Some(bass_top), middle_top, None),
+                (None, bass_top, Some(middle_top)),
                 t.bass_pot.resistance,
                 t.bass_pot.law,
                 Some(Knob::Bass),
                 0.5,
             );
-            // Middle: a variable resistor from the wiper (middle_top) to ground.
             b.pot(
                 "tone_stack middle_pot",
-                (None, middle_top, Some(GROUND)),
+                (Some(middle_top), middle_wiper, Some(GROUND)),
                 t.middle_pot.resistance,
                 t.middle_pot.law,
                 Some(Knob::Middle),

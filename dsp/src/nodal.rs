@@ -128,13 +128,12 @@ impl<L: Lane> PairEval<L> {
     }
 }
 
-/// A capacitor in the solver: its nodes (None = ground or a source) and its companion conductance.
+/// A capacitor in the solver: where its terminals' voltages are read (`volts`) and its history current goes
+/// (`given`; a spare slot for a terminal on ground or a source), and its companion conductance.
 #[derive(Clone, Copy, Debug)]
 struct CapSlot {
-    a: Option<usize>,
-    b: Option<usize>,
-    /// The voltages of the terminals that are not nodes (V).
-    fixed: [f64; 2],
+    volts_at: [usize; 2],
+    given_at: [usize; 2],
     conductance: f64,
 }
 
@@ -247,6 +246,8 @@ pub struct Nodal<L: Lane> {
     source_volts: Vec<f64>,
     full_source_volts: Vec<f64>,
     caps: Vec<CapSlot>,
+    /// Where the jack's voltage sits in `volts`.
+    jack_at: usize,
     /// Each capacitor's history current h (A).
     history: Vec<L>,
     valves: Vec<ValveSlot>,
@@ -340,16 +341,17 @@ impl<L: Lane> Nodal<L> {
             .map(|i| shape.at(i, pair_node))
             .collect();
         let pair_diagonal = shape.at(pair_node, pair_node);
+        let layout = Layout::new(&shape, net.sources.len());
         let caps: Vec<CapSlot> = net
             .capacitors
             .iter()
             .map(|c| CapSlot {
-                a: c.a.node(),
-                b: c.b.node(),
-                fixed: [0.0; 2],
+                volts_at: [layout.volts(c.a), layout.volts(c.b)],
+                given_at: [c.a.node().unwrap_or(n), c.b.node().unwrap_or(n)],
                 conductance: 0.0,
             })
             .collect();
+        let jack_at = layout.volts(Terminal::Source(net.jack));
         let mut predict_limit = vec![PREDICT_OTHER; n];
         for v in &net.valves {
             for t in [v.grid, v.cathode] {
@@ -380,7 +382,6 @@ impl<L: Lane> Nodal<L> {
             })
             .collect();
         let source_volts: Vec<f64> = net.sources.iter().map(|s| s.volts).collect();
-        let layout = Layout::new(&shape, net.sources.len());
         let no = L::lt(L::splat(1.0), L::splat(0.0));
         let mut model = Nodal {
             period: 1.0 / rate,
@@ -406,7 +407,9 @@ impl<L: Lane> Nodal<L> {
             rest_x: vec![L::default(); n],
             predict_limit,
             volts: vec![L::default(); layout.volts_len],
-            given: vec![L::default(); n],
+            // One spare slot after the nodes for capacitor terminals on ground or a source.
+            given: vec![L::default(); n + 1],
+            jack_at,
             step: vec![L::default(); layout.step_len],
             jacobian: vec![L::default(); layout.jacobian_len],
             inverse_pivots: vec![L::default(); n],
@@ -467,22 +470,12 @@ impl<L: Lane> Nodal<L> {
             self.g[i * self.shape.width() + self.shape.half] = 1.0;
         }
         // Pins and capacitor terminals on sources follow the source voltages (stepped during the DC solve).
-        let fixed = |t: Terminal, sources: &[f64]| match t {
-            Terminal::Source(s) => sources[s],
-            _ => 0.0,
-        };
         let first_source = self.volts.len() - self.source_volts.len();
         for (slot, v) in self.volts[first_source..]
             .iter_mut()
             .zip(&self.source_volts)
         {
             *slot = L::splat(*v);
-        }
-        for (slot, c) in self.caps.iter_mut().zip(&self.net.capacitors) {
-            slot.fixed = [
-                fixed(c.a, &self.source_volts),
-                fixed(c.b, &self.source_volts),
-            ];
         }
     }
 
@@ -568,7 +561,7 @@ impl<L: Lane> Nodal<L> {
         // With G = 2C/T and h = G v, a capacitor passes no current at its DC voltage v.
         self.assemble(true);
         for (slot, h) in self.caps.iter().zip(self.history.iter_mut()) {
-            *h = L::splat(slot.conductance) * across(&self.volts[self.shape.half..], slot);
+            *h = L::splat(slot.conductance) * across(&self.volts, slot);
         }
         self.rest_x.clone_from(&self.x);
         self.rest_history.clone_from(&self.history);
@@ -632,7 +625,7 @@ impl<L: Lane> Nodal<L> {
     #[inline(always)]
     fn update_history(&mut self) {
         for (slot, h) in self.caps.iter().zip(self.history.iter_mut()) {
-            let v = across(&self.volts[self.shape.half..], slot);
+            let v = across(&self.volts, slot);
             *h = L::splat(2.0 * slot.conductance).madd(v, -*h);
         }
     }
@@ -646,17 +639,16 @@ impl<L: Lane> Nodal<L> {
         for (g, r) in self.given.iter_mut().zip(&self.rails) {
             *g = L::splat(*r);
         }
+        let spare = self.given.len() - 1;
+        self.given[spare] = L::default();
         for &(node, g) in &self.jack {
             self.given[node] = L::splat(g).madd(input, self.given[node]);
         }
         for (slot, h) in self.caps.iter().zip(&self.history) {
-            if let Some(a) = slot.a {
-                self.given[a] += *h;
-            }
-            if let Some(b) = slot.b {
-                self.given[b] -= *h;
-            }
+            self.given[slot.given_at[0]] += *h;
+            self.given[slot.given_at[1]] -= *h;
         }
+        self.volts[self.jack_at] = input;
         let mut x = std::mem::take(&mut self.x);
         let converged = match self.shape.half {
             1 => self.newton::<3>(&mut x, max_iterations),
@@ -987,10 +979,7 @@ impl<L: Lane> Nodal<L> {
 /// The voltage across capacitor `slot`, a to b.
 #[inline(always)]
 fn across<L: Lane>(volts: &[L], slot: &CapSlot) -> L {
-    // `volts` starts at node 0 (the padded storage from its offset on).
-    let va = slot.a.map_or(L::splat(slot.fixed[0]), |i| volts[i]);
-    let vb = slot.b.map_or(L::splat(slot.fixed[1]), |i| volts[i]);
-    va - vb
+    volts[slot.volts_at[0]] - volts[slot.volts_at[1]]
 }
 
 /// The negation of a mask.

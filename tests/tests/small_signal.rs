@@ -263,9 +263,21 @@ fn stage_gain(s: &SmallSignal, load: Complex<f64>, cathode: Complex<f64>) -> Com
 #[test]
 fn built_in_preamp_gain_is_the_product_of_its_loaded_stages() {
     let circuit = Circuit::builtin();
-    assert_eq!(circuit.preamp.len(), 2, "the built-in preamp has two stages before the gain stage");
+    assert_eq!(
+        circuit.preamp.len(),
+        2,
+        "the built-in preamp has two stages before the gain stage"
+    );
     let gain = 0.5;
-    let nodes = ["grid1", "plate1", "grid2", "plate2", "gain_grid", "gain_plate", "follower_cathode"];
+    let nodes = [
+        "grid1",
+        "plate1",
+        "grid2",
+        "plate2",
+        "gain_grid",
+        "gain_plate",
+        "follower_cathode",
+    ];
     // Small enough that every stage stays linear: about 0.1 mV at the jack.
     let m = measure(&circuit, gain, 1e-4, &nodes);
     let measured = m.nodes[6] / Complex::new(0.0, -1e-4);
@@ -282,7 +294,11 @@ fn built_in_preamp_gain_is_the_product_of_its_loaded_stages() {
     let volume_top = par(res(top), cap(volume.bright_cap));
     let network1 = volume_top + res(bottom);
     let load1 = par(res(p1.plate_resistor), cap(p1.coupling_cap) + network1);
-    let a1 = stage_gain(&s1, load1, par(res(p1.cathode_resistor), cap(p1.cathode_bypass)));
+    let a1 = stage_gain(
+        &s1,
+        load1,
+        par(res(p1.cathode_resistor), cap(p1.cathode_bypass)),
+    );
     // Plate to the next grid: the coupling cap against the network, then the pot's share below the wiper.
     let t1 = network1 / (cap(p1.coupling_cap) + network1) * res(bottom) / network1;
 
@@ -293,7 +309,11 @@ fn built_in_preamp_gain_is_the_product_of_its_loaded_stages() {
     let series = par(res(divider.series), cap(divider.series_cap));
     let network2 = series + res(divider.shunt);
     let load2 = par(res(p2.plate_resistor), cap(p2.coupling_cap) + network2);
-    let a2 = stage_gain(&s2, load2, par(res(p2.cathode_resistor), cap(p2.cathode_bypass)));
+    let a2 = stage_gain(
+        &s2,
+        load2,
+        par(res(p2.cathode_resistor), cap(p2.cathode_bypass)),
+    );
     let t2 = network2 / (cap(p2.coupling_cap) + network2) * res(divider.shunt) / network2;
 
     // Gain stage, loaded by the follower's bootstrapped grid.
@@ -328,8 +348,15 @@ fn built_in_preamp_gain_is_the_product_of_its_loaded_stages() {
         ("stage 2", m.nodes[3] / m.nodes[2], a2),
         ("gain stage", m.nodes[5] / m.nodes[4], a3),
     ] {
-        println!("{name}: model {:.2}, textbook {:.2}", model.norm(), book.norm());
-        assert!(rel(model.norm(), book.norm()) < 0.03, "{name}: {model} vs {book}");
+        println!(
+            "{name}: model {:.2}, textbook {:.2}",
+            model.norm(),
+            book.norm()
+        );
+        assert!(
+            rel(model.norm(), book.norm()) < 0.03,
+            "{name}: {model} vs {book}"
+        );
     }
     println!(
         "jack to follower cathode: model {:.1} ({:.1} deg), textbook product {:.1} ({:.1} deg)",

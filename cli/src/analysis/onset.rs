@@ -115,7 +115,8 @@ pub struct Criteria {
 impl Criteria {
     pub fn new(grid_stopper: f64, idle: &Readout) -> Criteria {
         let (at_threshold, _) = grid_current_threshold(grid_stopper);
-        let (at_idle, _) = Triode::grid_current(idle.gain_stage().grid_volts - idle.gain_stage().cathode_volts);
+        let (at_idle, _) =
+            Triode::grid_current(idle.gain_stage().grid_volts - idle.gain_stage().cathode_volts);
         Criteria {
             zener_current: CLAMPED_CURRENT,
             gain_grid_current: idle.gain_stage().grid_current + (at_threshold - at_idle).max(0.0),

@@ -377,14 +377,10 @@ pub fn parse(path: &Path, text: &str, output_override: Option<&Path>) -> Result<
 
     // Circuit.
     let (mut circuit, circuit_label) = match &raw.circuit {
-        None => (
-            Circuit::builtin(),
-            "built-in reference circuit".to_string(),
-        ),
-        Some(c) if c.get_ref() == "builtin" || c.get_ref() == "built-in" => (
-            Circuit::builtin(),
-            "built-in reference circuit".to_string(),
-        ),
+        None => (Circuit::builtin(), "built-in reference circuit".to_string()),
+        Some(c) if c.get_ref() == "builtin" || c.get_ref() == "built-in" => {
+            (Circuit::builtin(), "built-in reference circuit".to_string())
+        }
         Some(c) => {
             let full = dir.join(c.get_ref());
             let circuit_text = std::fs::read_to_string(&full).map_err(|e| {
