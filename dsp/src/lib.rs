@@ -2,6 +2,7 @@
 //! filter, in real volts. See `stage.rs` for the circuit as it reads on a schematic.
 
 pub mod arith;
+pub mod cabinet;
 pub mod circuit;
 pub mod devices;
 pub mod parts;
