@@ -7,6 +7,7 @@
 
 pub mod arith;
 pub mod band;
+pub mod cabinet;
 pub mod circuit;
 pub mod denormals;
 pub mod devices;
