@@ -9,6 +9,7 @@ pub mod arith;
 pub mod band;
 pub mod cabinet;
 pub mod circuit;
+pub mod condense;
 pub mod denormals;
 pub mod devices;
 pub mod elements;
