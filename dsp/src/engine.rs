@@ -168,6 +168,44 @@ impl Meters {
         self.newton_iterations += report.iterations as u64;
         self.newton_failures += u64::from(!report.converged);
     }
+    /// Fold in the meters of another render (the other channel of a stereo file, the next block of a long one):
+    /// counts and sums add, peaks take the larger, minima the smaller, the clamp node's negative peak the more
+    /// negative. The result is what one meter would have read over both renders (same internal rate).
+    pub fn merge(&mut self, other: &Meters) {
+        if self.samples == 0 {
+            self.period = other.period;
+        }
+        self.samples += other.samples;
+        self.clamped_samples += other.clamped_samples;
+        self.clamp_peak_positive = larger(self.clamp_peak_positive, other.clamp_peak_positive);
+        self.clamp_peak_negative = smaller(self.clamp_peak_negative, other.clamp_peak_negative);
+        self.zener_peak_current = larger(self.zener_peak_current, other.zener_peak_current);
+        self.zener_current_square_sum += other.zener_current_square_sum;
+        self.positive_part_peak_watts = larger(
+            self.positive_part_peak_watts,
+            other.positive_part_peak_watts,
+        );
+        self.negative_part_peak_watts = larger(
+            self.negative_part_peak_watts,
+            other.negative_part_peak_watts,
+        );
+        self.positive_part_watt_sum += other.positive_part_watt_sum;
+        self.negative_part_watt_sum += other.negative_part_watt_sum;
+        self.gain_grid_current_peak =
+            larger(self.gain_grid_current_peak, other.gain_grid_current_peak);
+        self.follower_grid_current_peak = larger(
+            self.follower_grid_current_peak,
+            other.follower_grid_current_peak,
+        );
+        self.gain_plate_current_min =
+            smaller(self.gain_plate_current_min, other.gain_plate_current_min);
+        self.follower_plate_current_min = smaller(
+            self.follower_plate_current_min,
+            other.follower_plate_current_min,
+        );
+        self.newton_iterations += other.newton_iterations;
+        self.newton_failures += other.newton_failures;
+    }
 }
 
 /// The larger of a running extreme `a` and a new value `b` (a NaN `b` is ignored, as f64::max does), in

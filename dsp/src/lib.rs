@@ -19,6 +19,7 @@ pub mod measure;
 pub mod oversampling;
 pub mod packed;
 pub mod units;
+pub mod wav;
 
 pub use engine::{Engine, Frame, Meters, Probe};
 pub use oversampling::Quality;
