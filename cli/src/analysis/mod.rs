@@ -12,12 +12,8 @@ mod tests;
 use common::{load_circuit, parse_quality, parse_settings, Rig};
 use std::path::PathBuf;
 
-/// Safety text (BRIEF section 8), printed with every analysis.
-pub const SAFETY: &str = "Safety: valve amplifiers run at several hundred volts and their filter capacitors \
-stay charged after power-off; the numbers this tool prints are a simulation, not a measurement of a live \
-chassis. Work on a live amp only with the training to do so; drain and verify capacitors; follow local \
-electrical codes; when in doubt, have a qualified technician do the work. Check part voltage and power ratings \
-against the values the tool reports with margin.";
+/// Safety text (docs/model.md section 8), printed with every analysis.
+pub const SAFETY: &str = concat!("Safety: ", safety_text!());
 
 #[derive(clap::Args)]
 pub struct OnsetArgs {
@@ -112,7 +108,7 @@ fn rig_from(
 }
 
 fn write(path: &std::path::Path, text: &str) -> Result<(), String> {
-    std::fs::write(path, text).map_err(|e| format!("cannot write {}: {e}", path.display()))
+    crate::files::write_text(path, text)
 }
 
 pub fn onset(a: OnsetArgs) -> Result<(), String> {

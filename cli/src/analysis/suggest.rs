@@ -183,7 +183,7 @@ fn source_resistance(rig: &Rig) -> f64 {
 }
 
 /// Clamp level of `part` reverse-biased in series with `part` forward at `current` (A), from the device
-/// equation (BRIEF section 4): the estimate before rendering.
+/// equation (docs/model.md section 4): the estimate before rendering.
 pub fn threshold(part: &Part, current: f64) -> f64 {
     let z: Zener = part.spec.model();
     -z.voltage_at(-current) + z.voltage_at(current)
