@@ -307,7 +307,7 @@ fn impossible_goals_are_refused_naming_the_limit() {
     )
     .unwrap_err();
     assert!(err.contains("1N4728A"), "{err}");
-    let floor = number_after(&err, "clamps near +");
+    let floor = number_after(&err, "conducts at +");
     assert!(floor > 2.0 && floor < 4.5, "{err}");
     // A share no part reaches on a quiet input at low gain.
     let quiet = Stimulus::sustained(0.05, 1000.0);
@@ -327,12 +327,35 @@ fn impossible_goals_are_refused_naming_the_limit() {
     assert!(suggest::parse_goal("share=1.5").is_err());
     assert!(suggest::parse_goal("loud").is_err());
     assert_eq!(
-        suggest::parse_goal("clamp=+21,-8").unwrap(),
+        suggest::parse_goal("clamp-level=+21,-8").unwrap(),
         Goal::Clamp {
             positive: 21.0,
             negative: 8.0
         }
     );
+    // The signs name the sides, in either order; the old name still reads.
+    for goal in ["clamp-level=-12,+6", "clamp=+6,-12"] {
+        assert_eq!(
+            suggest::parse_goal(goal).unwrap(),
+            Goal::Clamp {
+                positive: 6.0,
+                negative: 12.0
+            },
+            "{goal}"
+        );
+    }
+    assert_eq!(
+        suggest::parse_goal("clamp-level=15").unwrap(),
+        Goal::Clamp {
+            positive: 15.0,
+            negative: 15.0
+        }
+    );
+    // Without signs, or with the same sign twice, two levels are ambiguous: refused with the right form.
+    for goal in ["clamp-level=12,6", "clamp-level=+12,+6", "clamp-level=-12"] {
+        let e = suggest::parse_goal(goal).unwrap_err();
+        assert!(e.contains("clamp-level=+12,-6"), "{goal}: {e}");
+    }
 }
 
 /// Issue 5: dissipation figures agree with probed voltage times current integrated over the render, within 1%.
