@@ -433,7 +433,12 @@ pub fn load(path: &Path, output_override: Option<&Path>) -> Result<Plan, String>
 
 /// The parser's message in the plan's words: its own struct names replaced by what the plan calls them.
 fn friendly(message: &str) -> String {
-    let mut m = message.trim().to_string();
+    let mut m = message
+        .lines()
+        .map(str::trim)
+        .filter(|l| !l.is_empty())
+        .collect::<Vec<_>>()
+        .join(": ");
     for (from, to) in [
         (
             "struct RawInput",
@@ -1055,5 +1060,99 @@ mod tests {
             "{e}"
         );
         std::fs::remove_dir_all(d).unwrap();
+    }
+
+    /// Any text as a plan: a plan or one clear line naming the plan file, never a panic (proptest).
+    mod fuzz {
+        use super::*;
+        use proptest::prelude::*;
+
+        fn lines() -> impl Strategy<Value = String> {
+            let key = prop::sample::select(vec![
+                "di",
+                "circuit",
+                "output",
+                "target_lufs",
+                "gain",
+                "level",
+                "quality",
+                "name",
+                "position",
+                "positive",
+                "negative",
+                "volts_at_full_scale",
+                "dbu_at_full_scale",
+                "tone_peak_volts",
+                "segment_seconds",
+                "marker",
+                "volts",
+                "izt",
+                "zzk",
+            ]);
+            let value = prop::sample::select(vec![
+                "1",
+                "0",
+                "-1",
+                "1e308",
+                "nan",
+                "inf",
+                "\"abc\"",
+                "[\"di.wav\"]",
+                "[]",
+                "{ volts = 5.1 }",
+                "{ volts = \"x\" }",
+                "true",
+                "2.5",
+                "\"builtin\"",
+                "\"out\"",
+                "[1, 2]",
+                "{}",
+            ]);
+            let header = prop::sample::select(vec![
+                "",
+                "[input]",
+                "[ab]",
+                "[[variant]]",
+                "[variant]",
+                "[[input]]",
+            ]);
+            prop::collection::vec((header, key, value), 0..14).prop_map(|rows| {
+                let mut t = String::new();
+                for (h, k, v) in rows {
+                    if !h.is_empty() {
+                        t.push_str(h);
+                        t.push('\n');
+                    }
+                    t.push_str(&format!("{k} = {v}\n"));
+                }
+                t
+            })
+        }
+
+        fn check(text: &str) -> Result<(), TestCaseError> {
+            let d = temp("fuzz");
+            std::fs::write(d.join("di.wav"), b"RIFF").unwrap();
+            match parse(&d.join("plan.toml"), text, None) {
+                Ok(plan) => prop_assert!(!plan.variants.is_empty() && !plan.di.is_empty()),
+                Err(e) => {
+                    prop_assert!(e.contains("plan.toml"), "{e}");
+                    prop_assert!(!e.contains('\n'), "several lines: {e}");
+                    prop_assert!(e.len() < 1200, "{} characters: {e}", e.len());
+                }
+            }
+            Ok(())
+        }
+
+        proptest! {
+            #![proptest_config(ProptestConfig { cases: 400, failure_persistence: None, ..ProptestConfig::default() })]
+            #[test]
+            fn any_text(text in ".{0,400}") {
+                check(&text)?;
+            }
+            #[test]
+            fn plan_like_text(text in lines()) {
+                check(&format!("di = [\"di.wav\"]\noutput = \"out\"\n{text}"))?;
+            }
+        }
     }
 }
