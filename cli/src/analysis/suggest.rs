@@ -512,7 +512,7 @@ fn before_valve(
         let mut c = candidate(p, n, &o, l, off);
         match (z, v) {
             (Some(z), Some(v)) => {
-                let margin = 20.0 * (v / z).log10();
+                let margin = breakdown_dsp::units::gain_to_db(v / z);
                 c.meets = margin > 0.0;
                 c.miss = -margin;
                 c.note = format!(
