@@ -31,7 +31,7 @@ pub fn margin_text(margin: f64) -> String {
 /// The margin states in one sentence, for the tables' headings.
 pub fn margin_legend() -> String {
     format!(
-        "margin = rating / load: ok at {THIN_BELOW}x or more, thin below {THIN_BELOW}x, over the rating below 1x          (common practice)"
+        "margin = rating / load: ok at {THIN_BELOW}x or more, thin below {THIN_BELOW}x, over the rating below 1x (common practice)"
     )
 }
 

@@ -218,7 +218,7 @@ pub fn check_output(output: &Path, inputs: &[(String, PathBuf)]) -> Result<(), S
     for (what, path) in inputs {
         if files::inside(path, output) {
             return Err(format!(
-                "the output folder '{shown}' holds the {what} '{}': Breakdown replaces its output folder whole,                  so it may not hold an input; choose another output folder",
+                "the output folder '{shown}' holds the {what} '{}': Breakdown replaces its output folder whole, so it may not hold an input; choose another output folder",
                 path.display()
             ));
         }
@@ -237,7 +237,7 @@ pub fn check_output(output: &Path, inputs: &[(String, PathBuf)]) -> Result<(), S
     }
     let refuse = |why: String| {
         Err(format!(
-            "output folder '{shown}' exists and {why}; Breakdown replaces only a folder holding nothing but its              own earlier output: choose another folder, or empty this one yourself"
+            "output folder '{shown}' exists and {why}; Breakdown replaces only a folder holding nothing but its own earlier output: choose another folder, or empty this one yourself"
         ))
     };
     let Ok(text) = std::fs::read_to_string(output.join(MANIFEST)) else {
