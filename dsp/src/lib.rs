@@ -24,6 +24,7 @@ pub mod packed;
 pub mod parts;
 pub mod pot;
 pub mod units;
+pub mod wav;
 
 pub use circuit::{Circuit, CircuitError, Placement, Settings};
 pub use elements::Knob;

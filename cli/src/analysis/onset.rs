@@ -2,7 +2,7 @@
 //!
 //! Each cell renders a short tone burst and reads the engine's meters over its steady part. An element
 //! "limits" when it takes away a noticeable part of the small-signal gain at the signal's peak. The criteria,
-//! each from the device equations the model uses (BRIEF section 4):
+//! each from the device equations the model uses (docs/model.md section 4):
 //!
 //! * **Zener clamp**: the pair carries more than [`CLAMPED_CURRENT`] (10 uA) at any instant, the same test the
 //!   engine's "share of time clamped" meter uses. Physically: a Zener in its knee has an incremental
@@ -18,7 +18,7 @@
 //!   Koren law Ip ~ E1^ex the transconductance scales as Ip^((ex-1)/ex); at 2% of idle it is about a third of
 //!   its idle value (12AX7, ex = 1.4) and collapses to zero within a fraction of a volt more grid drive.
 //! * **Cathode follower, cut-off**: the follower's plate current falls below 2% of its idle value: it can no
-//!   longer sink the load current on the down-swing (BRIEF section 2), the same 2% edge as above.
+//!   longer sink the load current on the down-swing (docs/model.md section 2), the same 2% edge as above.
 //!
 //! Which element limits "first" in a cell: of the elements active in that cell, the one that became active
 //! at the lowest input level at that gain (scanning the row from the quietest cell up); ties in the same cell
