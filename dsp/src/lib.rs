@@ -18,6 +18,7 @@ pub mod fastmath;
 pub mod measure;
 pub mod oversampling;
 pub mod packed;
+pub mod smoothing;
 pub mod units;
 
 pub use engine::{Engine, Frame, Meters, Probe};
