@@ -59,7 +59,7 @@ impl Glide {
 
     /// One step; returns the new value.
     #[inline]
-    pub fn next(&mut self) -> f64 {
+    pub fn step(&mut self) -> f64 {
         if self.value == self.target {
             // At rest: the step below would add zero and snap to the target, so return the target directly.
             return self.target;
@@ -101,11 +101,11 @@ mod tests {
         let steps = (tau * rate) as usize;
         let mut v = 0.0;
         for _ in 0..steps {
-            v = g.next();
+            v = g.step();
         }
         assert!((v - (1.0 - (-1.0f64).exp())).abs() < 1e-3, "{v}");
         for _ in 0..2 * steps {
-            v = g.next();
+            v = g.step();
         }
         assert!((v - (1.0 - (-3.0f64).exp())).abs() < 1e-3, "{v}");
     }
@@ -115,17 +115,17 @@ mod tests {
         let mut g = Glide::new(2.0, 0.001, 48_000.0);
         g.set_target(5.0);
         for _ in 0..10_000 {
-            g.next();
+            g.step();
         }
         assert_eq!(g.value(), 5.0);
         assert!(!g.moving());
         g.set_target(f64::NAN);
         g.set_target(f64::INFINITY);
-        assert_eq!(g.next(), 5.0);
+        assert_eq!(g.step(), 5.0);
         g.jump(1.0);
         assert_eq!((g.value(), g.target()), (1.0, 1.0));
         let mut instant = Glide::new(0.0, 0.0, 48_000.0);
         instant.set_target(3.0);
-        assert_eq!(instant.next(), 3.0);
+        assert_eq!(instant.step(), 3.0);
     }
 }
