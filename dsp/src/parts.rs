@@ -32,7 +32,7 @@ macro_rules! rows {
 
 /// 1 W glass/plastic 1N47xxA family: Vz (V), Izt (mA), Zzt (ohm), Izk (mA), Zzk (ohm) maximum limits.
 /// Typed from memory of the common industry datasheet table [memory]; rows 1N4733A, 1N4747A and 1N4749A are
-/// the check values of BRIEF section 4 and are verified by a test.
+/// the check values of docs/model.md section 4 and are verified by a test.
 pub const FAMILY_1N47XXA: Family = Family {
     name: "1N47xxA (1 W)",
     power_rating_watts: 1.0,
@@ -306,7 +306,7 @@ mod tests {
     #[test]
     fn half_watt_family_rows_are_ordered_and_fit() {
         // Table typed from memory [memory]; check its shape: rising voltages, izk below izt, zzk above zzt,
-        // and a finite positive fit of BRIEF section 4 for every row.
+        // and a finite positive fit of docs/model.md section 4 for every row.
         let rows = FAMILY_1N52XXB.rows;
         assert_eq!(rows.len(), 61);
         for w in rows.windows(2) {
