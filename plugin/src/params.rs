@@ -192,12 +192,9 @@ fn toggle(name: &str, default: bool) -> BoolParam {
     BoolParam::new(name, default)
 }
 
-/// "1.000 V peak (-0.8 dBu sine)".
+/// "1.000 V (-0.8 dBu)": peak volts, and the dBu of a sine with that peak.
 pub fn volts_text(v: f32) -> String {
-    format!(
-        "{v:.3} V peak ({:+.1} dBu sine)",
-        peak_volts_to_dbu(v as f64)
-    )
+    format!("{v:.3} V ({:+.1} dBu)", peak_volts_to_dbu(v as f64))
 }
 
 /// Reads "1.2", "1.2 V", "1.2 V peak" or "+4 dBu" (a sine's level).
@@ -395,11 +392,7 @@ mod tests {
         assert_eq!(parse_volts("1.5 V"), Some(1.5));
         assert_eq!(parse_volts("0.5"), Some(0.5));
         // 1 V peak is 0.7071 V rms: 20 log10(0.7071 / 0.7746) = -0.79 dBu.
-        assert!(
-            volts_text(1.0).starts_with("1.000 V peak (-0.8 dBu"),
-            "{}",
-            volts_text(1.0)
-        );
+        assert_eq!(volts_text(1.0), "1.000 V (-0.8 dBu)");
     }
 
     #[test]

@@ -20,7 +20,7 @@ use breakdown_dsp::smoothing::Glide;
 use breakdown_dsp::units::{db_to_gain, gain_to_db};
 use breakdown_dsp::{Circuit, Engine, Probe, Quality, Settings};
 use std::ptr;
-use std::sync::atomic::{AtomicPtr, AtomicU32, AtomicUsize, Ordering};
+use std::sync::atomic::{AtomicBool, AtomicPtr, AtomicU32, AtomicUsize, Ordering};
 use std::sync::{Arc, Mutex};
 
 /// Crossfade time for switching positions, listening points and swapping in rebuilt models (s).
@@ -220,6 +220,9 @@ pub struct Models {
     /// Clamp-node volts to listening-output units (the circuit's `[listen] volts_at_full_scale`).
     clamp_scale: f64,
     pub parts: PartsInfo,
+    /// A loudness meter for a slot that has none yet (a slot gets its meter with its first models, so slots
+    /// the running circuit does not use hold no 3 s buffer); dropped with the models otherwise.
+    meter: Option<Box<ShortTerm>>,
 }
 
 /// One slot's meter window, over its channels.
@@ -236,6 +239,12 @@ pub struct MeterWindow {
 }
 
 impl Models {
+    /// `new` with a loudness meter for a slot that has none.
+    fn with_meter(mut self: Box<Self>) -> Result<Box<Models>, String> {
+        self.meter = Some(Box::new(ShortTerm::new(self.sample_rate)?));
+        Ok(self)
+    }
+
     /// Build the models of `spec` on `circuit` (allocates: off the audio thread).
     pub fn new(
         spec: SlotSpec,
@@ -293,6 +302,7 @@ impl Models {
             engines,
             clamp_scale: 1.0 / slot.listen.volts_at_full_scale,
             parts,
+            meter: None,
         }))
     }
 
@@ -450,6 +460,9 @@ pub struct Worker {
     channels: AtomicUsize,
     pots: [AtomicF64; 5],
     calibration: AtomicF64,
+    /// The slot has its loudness meter (set by the audio thread); the worker adds one to a slot's models
+    /// until it has.
+    metered: [AtomicBool; SLOTS],
     built_generation: Mutex<[u32; SLOTS]>,
 }
 
@@ -471,6 +484,7 @@ impl Worker {
             channels: AtomicUsize::new(1),
             pots: [pots.gain, pots.level, pots.treble, pots.middle, pots.bass].map(AtomicF64::new),
             calibration: AtomicF64::new(1.0),
+            metered: Default::default(),
             built_generation: Mutex::new([0; SLOTS]),
         }
     }
@@ -574,7 +588,14 @@ impl Worker {
                     self.channels.load(Ordering::Relaxed),
                     &self.pots(),
                     self.calibration.load(Ordering::Relaxed),
-                ) {
+                )
+                .and_then(|b| {
+                    if self.metered[slot].load(Ordering::Acquire) {
+                        Ok(b)
+                    } else {
+                        b.with_meter()
+                    }
+                }) {
                     Ok(b) => drop(self.incoming[slot].replace(b)),
                     Err(e) => nice_plug::nice_warn!("Breakdown: could not build a model: {e}"),
                 }
@@ -597,6 +618,7 @@ impl Worker {
             built[slot] = self.requests[slot].generation.load(Ordering::Acquire);
             drop(self.incoming[slot].take());
             drop(self.returns[slot].take());
+            self.metered[slot].store(false, Ordering::Release);
         }
     }
 }
@@ -618,7 +640,8 @@ struct Slot {
     fade: usize,
     wanted: SlotSpec,
     bin: [Option<Box<Models>>; BIN],
-    loudness: ShortTerm,
+    /// None until the slot's first models brought one.
+    loudness: Option<Box<ShortTerm>>,
     match_gain: Glide,
     /// Per channel: (listening value, clamp volts) of the last sample.
     out: [(f64, f64); 2],
@@ -666,7 +689,9 @@ impl Slot {
         for m in self.models_mut() {
             m.reset();
         }
-        self.loudness.reset();
+        if let Some(l) = self.loudness.as_mut() {
+            l.reset();
+        }
         self.out = [(0.0, 0.0); 2];
     }
 }
@@ -735,24 +760,29 @@ impl Processor {
         let mut slots = Vec::with_capacity(SLOTS);
         for s in 0..SLOTS {
             let spec = slot_spec(s, key, controls);
-            let current = match spec.source {
+            let mut current = match spec.source {
                 Source::Idle => None,
-                _ => Some(Models::new(
-                    spec,
-                    &circuit,
-                    sample_rate,
-                    channels,
-                    &controls.pots,
-                    controls.calibration,
-                )?),
+                _ => Some(
+                    Models::new(
+                        spec,
+                        &circuit,
+                        sample_rate,
+                        channels,
+                        &controls.pots,
+                        controls.calibration,
+                    )?
+                    .with_meter()?,
+                ),
             };
+            let loudness = current.as_mut().and_then(|m| m.meter.take());
+            worker.metered[s].store(loudness.is_some(), Ordering::Release);
             slots.push(Slot {
                 current,
                 next: None,
                 fade: 0,
                 wanted: spec,
                 bin: Default::default(),
-                loudness: ShortTerm::new(sample_rate)?,
+                loudness,
                 match_gain: Glide::new(1.0, MATCH_GLIDE_SECONDS, sample_rate),
                 out: [(0.0, 0.0); 2],
                 active: true,
@@ -900,6 +930,12 @@ impl Processor {
                         if let Some(old_next) = slot.next.take() {
                             slot.retire(old_next);
                         }
+                        let mut b = b;
+                        if slot.loudness.is_none() {
+                            slot.loudness = b.meter.take();
+                            self.worker.metered[s]
+                                .store(slot.loudness.is_some(), Ordering::Release);
+                        }
                         slot.next = Some(b);
                         slot.fade = 0;
                     }
@@ -1043,7 +1079,9 @@ impl Processor {
                     actions.service_worker = true;
                 }
             }
-            new_window |= slot.loudness.push(slot.out[0].0);
+            if let Some(l) = slot.loudness.as_mut() {
+                new_window |= l.push(slot.out[0].0);
+            }
             slot.match_gain.step();
         }
         if new_window {
@@ -1091,7 +1129,10 @@ impl Processor {
         let mut loudness = [f64::NEG_INFINITY; SLOTS];
         for (s, slot) in self.slots.iter().enumerate() {
             if slot.active {
-                loudness[s] = slot.loudness.lufs();
+                loudness[s] = slot
+                    .loudness
+                    .as_ref()
+                    .map_or(f64::NEG_INFINITY, |l| l.lufs());
                 self.shared.slots[s]
                     .loudness
                     .store(loudness[s] as f32, Ordering::Relaxed);

@@ -13,7 +13,6 @@ reports, with margin.";
 /// The caution, always on screen at the editor's foot.
 pub fn safety_strip(ui: &mut egui::Ui) {
     panel(ui, |ui| {
-        ui.set_width(ui.available_width());
         ui.label(egui::RichText::new(format!("Safety: {SAFETY}")).color(WARN));
     });
 }

@@ -121,7 +121,6 @@ impl CircuitPanel {
     pub fn draw(&mut self, ui: &mut egui::Ui, session: &Session, view: &CircuitView) {
         self.collect(session, view);
         panel(ui, |ui| {
-            ui.set_width(ui.available_width());
             ui.horizontal(|ui| {
                 heading(ui, "Circuit");
                 ui.label(egui::RichText::new(&view.name).strong());

@@ -14,7 +14,7 @@ use nice_plug::prelude::*;
 use nice_plug_egui::widgets::ParamSlider;
 use std::sync::atomic::Ordering;
 
-const SLIDER: f32 = 180.0;
+const SLIDER: f32 = 120.0;
 
 /// The slots shown: every position of the running circuit, then the candidate.
 fn shown_slots(view: &CircuitView) -> impl Iterator<Item = usize> {

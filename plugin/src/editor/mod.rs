@@ -14,20 +14,26 @@ mod widgets;
 pub use about::SAFETY;
 
 use crate::analysis::{Analyser, Spectrum};
-use crate::params::BreakdownParams;
+use crate::params::{BreakdownParams, Kind};
 use crate::presets::{Preset, DEMO_PRESETS};
 use crate::session::CircuitView;
 use crate::shared::Shared;
+use crate::state::default_param_values;
 use circuit_panel::CircuitPanel;
 use egui::FontId;
+use nice_plug::plugin::ParamValue;
+use nice_plug::prelude::*;
 use nice_plug_egui::{EguiEditorState, NiceEguiApp};
 use std::sync::atomic::Ordering;
 use std::sync::Arc;
 use std::time::Duration;
 use widgets::{ACCENT, BACKGROUND, TEXT_DIM};
 
-pub const WIDTH: u32 = 1180;
-pub const HEIGHT: u32 = 820;
+pub const WIDTH: u32 = 1300;
+pub const HEIGHT: u32 = 760;
+/// Widths of the two control columns (the scope, spectrum and ratings take the rest).
+const LEFT: f32 = 360.0;
+const MIDDLE: f32 = 330.0;
 
 /// Spectrum size (samples at the host rate).
 const FFT_SIZE: usize = 8192;
@@ -37,6 +43,42 @@ pub fn default_state() -> Arc<EguiEditorState> {
         nice_plug::editor::dpi::LogicalSize::new(WIDTH as f64, HEIGHT as f64),
         1.0,
     )
+}
+
+/// Set a choice parameter by its stable id.
+fn set_choice<T: Enum + PartialEq + Copy + 'static>(
+    setter: &ParamSetter,
+    p: &EnumParam<T>,
+    id: &str,
+) {
+    if let Some(k) = T::ids().and_then(|ids| ids.iter().position(|x| *x == id)) {
+        widgets::set(setter, p, T::from_index(k));
+    }
+}
+
+/// Load a preset as a person turning the controls would: every parameter set through the host (one gesture
+/// each), those the preset leaves out back to their defaults. The session's circuit stays. (Not a state load:
+/// that would run on the audio thread while the host plays.)
+fn apply_preset(setter: &ParamSetter, params: &BreakdownParams, preset: &Preset) {
+    let mut values = default_param_values();
+    for (id, v) in &preset.values {
+        values.insert(id.clone(), v.clone());
+    }
+    for (id, v) in &values {
+        match (id.as_str(), v) {
+            ("quality", ParamValue::String(c)) => set_choice(setter, &params.quality, c),
+            ("listen", ParamValue::String(c)) => set_choice(setter, &params.listen, c),
+            ("candidate_family", ParamValue::String(c)) => {
+                set_choice(setter, &params.candidate_family, c)
+            }
+            _ => match (params.kind(id), v) {
+                (Some(Kind::Float(p)), ParamValue::F32(x)) => widgets::set(setter, p, *x),
+                (Some(Kind::Int(p)), ParamValue::I32(x)) => widgets::set(setter, p, *x),
+                (Some(Kind::Bool(p)), ParamValue::Bool(x)) => widgets::set(setter, p, *x),
+                _ => nice_plug::nice_warn!("Breakdown: preset value {id} = {v:?} not applied"),
+            },
+        }
+    }
 }
 
 pub struct App {
@@ -102,7 +144,7 @@ impl App {
         }
     }
 
-    fn title_bar(&mut self, ui: &mut egui::Ui, gui: &nice_plug::context::gui::GuiContext) {
+    fn title_bar(&mut self, ui: &mut egui::Ui, setter: &ParamSetter) {
         ui.horizontal(|ui| {
             ui.label(
                 egui::RichText::new("BREAKDOWN")
@@ -127,9 +169,7 @@ impl App {
                                     for n in &preset.notes {
                                         nice_plug::nice_log!("Breakdown: preset {file}: {n}");
                                     }
-                                    gui.set_state(
-                                        preset.to_state(&self.params.session.persisted()),
-                                    );
+                                    apply_preset(setter, &self.params, &preset);
                                     self.preset_message =
                                         Some(format!("Loaded preset: {}", preset.name));
                                 }
@@ -180,21 +220,30 @@ impl NiceEguiApp for App {
         let setter = gui.param_setter();
         let full = ui.max_rect();
         ui.painter().rect_filled(full, 0.0, BACKGROUND);
-        self.title_bar(ui, &gui);
+        self.title_bar(ui, &setter);
         let heard = self.shared.heard.load(Ordering::Relaxed);
         let heard_name = controls::slot_name(&self.view, heard);
         ui.add_space(4.0);
+        let column_height = HEIGHT as f32 - 140.0;
         ui.horizontal_top(|ui| {
             ui.vertical(|ui| {
-                ui.set_width(380.0);
+                ui.set_width(LEFT);
                 egui::ScrollArea::vertical()
-                    .max_height(HEIGHT as f32 - 150.0)
+                    .id_salt("left")
+                    .max_height(column_height)
                     .show(ui, |ui| {
                         self.circuit_panel
                             .draw(ui, &self.params.session, &self.view);
                         ui.add_space(6.0);
                         controls::switch(ui, &setter, &self.params, &self.shared, &self.view);
-                        ui.add_space(6.0);
+                    });
+            });
+            ui.vertical(|ui| {
+                ui.set_width(MIDDLE);
+                egui::ScrollArea::vertical()
+                    .id_salt("middle")
+                    .max_height(column_height)
+                    .show(ui, |ui| {
                         controls::pots(ui, &setter, &self.params, &self.view);
                         ui.add_space(6.0);
                         controls::candidate(ui, &setter, &self.params);
@@ -202,25 +251,29 @@ impl NiceEguiApp for App {
                         controls::input_output(ui, &setter, &self.params, &self.shared, &self.view);
                     });
             });
-            ui.add_space(8.0);
             ui.vertical(|ui| {
-                if self.show_about {
-                    widgets::panel(ui, about::about);
-                    ui.add_space(6.0);
-                }
-                let scope_ms = self.params.session.scope_ms();
-                scope::draw(
-                    ui,
-                    &self.shared,
-                    scope_ms,
-                    &heard_name,
-                    &mut self.scope_buffer,
-                );
-                ui.add_space(6.0);
-                let rate = self.shared.sample_rate.load(Ordering::Relaxed);
-                spectrum::draw(ui, &self.spectrum, rate);
-                ui.add_space(6.0);
-                ratings::draw(ui, &self.shared, &heard_name);
+                egui::ScrollArea::vertical()
+                    .id_salt("right")
+                    .max_height(column_height)
+                    .show(ui, |ui| {
+                        if self.show_about {
+                            widgets::panel(ui, about::about);
+                            ui.add_space(6.0);
+                        }
+                        let scope_ms = self.params.session.scope_ms();
+                        scope::draw(
+                            ui,
+                            &self.shared,
+                            scope_ms,
+                            &heard_name,
+                            &mut self.scope_buffer,
+                        );
+                        ui.add_space(6.0);
+                        let rate = self.shared.sample_rate.load(Ordering::Relaxed);
+                        spectrum::draw(ui, &self.spectrum, rate);
+                        ui.add_space(6.0);
+                        ratings::draw(ui, &self.shared, &heard_name);
+                    });
             });
         });
         ui.add_space(4.0);

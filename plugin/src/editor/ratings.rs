@@ -43,7 +43,6 @@ pub fn draw(ui: &mut egui::Ui, shared: &Shared, heard_name: &str) {
     let own_knee = r.own_knee.load(Ordering::Relaxed);
     let rating = family.power_rating_watts;
     panel(ui, |ui| {
-        ui.set_width(ui.available_width() - 24.0);
         let vp = r.volts_positive.load(Ordering::Relaxed) as f64;
         let vn = r.volts_negative.load(Ordering::Relaxed) as f64;
         if !vp.is_finite() && !vn.is_finite() {

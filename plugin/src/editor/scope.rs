@@ -98,7 +98,7 @@ pub fn draw(
         Pos2::new(rect.left() + 40.0, rect.top() + 4.0),
         Align2::LEFT_TOP,
         format!(
-            "clamp node, {heard_name} ({scope_ms:.0} ms)   clamp level {} / {}   p-p {:.1} V   conducting (over {current}) {:.0}% of the time",
+            "clamp node, {heard_name} ({scope_ms:.0} ms)\nclamp level {} / {}  p-p {:.1} V  over {current} {:.0}% of the time",
             volts(pp),
             volts(pn),
             (pp - pn).max(0.0),

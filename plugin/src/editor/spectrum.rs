@@ -11,7 +11,7 @@ pub const THD_BAND_HZ: f64 = 20_000.0;
 
 pub fn draw(ui: &mut egui::Ui, sp: &Spectrum, rate: f64) {
     let (resp, painter) =
-        ui.allocate_painter(Vec2::new(ui.available_width() - 8.0, 200.0), Sense::hover());
+        ui.allocate_painter(Vec2::new(ui.available_width() - 8.0, 210.0), Sense::hover());
     let rect = resp.rect;
     painter.rect_filled(rect, 4.0, PANEL);
     let (f_lo, f_hi) = (20.0f64, (rate / 2.0).min(20_000.0));
@@ -19,8 +19,8 @@ pub fn draw(ui: &mut egui::Ui, sp: &Spectrum, rate: f64) {
     let (db_top, db_bottom) = (0.0f32, -120.0f32);
     let y_of = |db: f32| {
         rect.top()
-            + 16.0
-            + (rect.height() - 20.0) * ((db_top - db) / (db_top - db_bottom)).clamp(0.0, 1.0)
+            + 32.0
+            + (rect.height() - 36.0) * ((db_top - db) / (db_top - db_bottom)).clamp(0.0, 1.0)
     };
     for db in [-20.0, -40.0, -60.0, -80.0, -100.0] {
         painter.hline(rect.x_range(), y_of(db), Stroke::new(1.0, GRID));
@@ -64,11 +64,11 @@ pub fn draw(ui: &mut egui::Ui, sp: &Spectrum, rate: f64) {
             let x = x_of(f);
             painter.vline(
                 x,
-                Rect::from_x_y_ranges(x..=x, rect.top() + 16.0..=rect.top() + 30.0).y_range(),
+                Rect::from_x_y_ranges(x..=x, rect.top() + 32.0..=rect.top() + 46.0).y_range(),
                 Stroke::new(2.0, color),
             );
             painter.text(
-                Pos2::new(x, rect.top() + 30.0),
+                Pos2::new(x, rect.top() + 46.0),
                 Align2::CENTER_TOP,
                 format!("{h}"),
                 FontId::monospace(9.0),
@@ -76,7 +76,7 @@ pub fn draw(ui: &mut egui::Ui, sp: &Spectrum, rate: f64) {
             );
         }
         format!(
-            "listening point  f0 {:.0} Hz  THD_F {:.2}% (harmonics 2-{}, band to {:.0} kHz)  even/odd {:.0}/{:.0}%",
+            "listening point  f0 {:.0} Hz  THD_F {:.2}% (harmonics 2-{}, to {:.0} kHz)\neven/odd {:.0}/{:.0}%",
             f0,
             sp.thd_f * 100.0,
             sp.harmonic_count,

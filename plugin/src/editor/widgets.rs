@@ -18,7 +18,10 @@ pub fn panel<R>(ui: &mut egui::Ui, add: impl FnOnce(&mut egui::Ui) -> R) -> R {
         .fill(PANEL)
         .inner_margin(8.0)
         .corner_radius(4.0)
-        .show(ui, add)
+        .show(ui, |ui| {
+            ui.set_width(ui.available_width());
+            add(ui)
+        })
         .inner
 }
 
