@@ -3,6 +3,7 @@
 //! `breakdown_dsp::measure::distortion` (the project's one definition).
 
 use breakdown_dsp::measure::distortion;
+use breakdown_dsp::units::gain_to_db;
 use realfft::{RealFftPlanner, RealToComplex};
 use std::sync::Arc;
 
@@ -122,7 +123,7 @@ impl Analyser {
         let power: Vec<f64> = self.output.iter().map(|c| c.norm_sqr()).collect();
         spectrum.magnitude_db = power
             .iter()
-            .map(|p| (20.0 * (p.sqrt() * scale).max(1e-12).log10()) as f32)
+            .map(|p| gain_to_db((p.sqrt() * scale).max(1e-12)) as f32)
             .collect();
         let bin_of = |hz: f64| hz / spectrum.bin_hz;
         let lo = bin_of(40.0).ceil() as usize;

@@ -95,7 +95,7 @@ mod tests {
     use std::f64::consts::PI;
 
     fn sine_loudness(rate: f64, dbfs: f64, seconds: f64) -> f64 {
-        let amp = 10f64.powf(dbfs / 20.0);
+        let amp = breakdown_dsp::units::db_to_gain(dbfs);
         let mut m = ShortTerm::new(rate).unwrap();
         for n in 0..(rate * seconds) as usize {
             m.push(amp * (2.0 * PI * 1000.0 * n as f64 / rate).sin());
