@@ -122,10 +122,9 @@ impl App {
         let session = &self.params.session;
         session.refresh();
         let revision = session.revision();
-        let view = session.view();
-        if revision != self.view_revision || view.id != self.view.id {
+        if revision != self.view_revision || session.key().id != self.view.id {
             self.view_revision = revision;
-            self.view = view;
+            self.view = session.view();
         }
     }
 
