@@ -23,6 +23,7 @@ pub mod oversampling;
 pub mod packed;
 pub mod parts;
 pub mod pot;
+pub mod smoothing;
 pub mod units;
 pub mod wav;
 

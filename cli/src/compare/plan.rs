@@ -548,13 +548,7 @@ fn read_circuit(
     dir: &Path,
     raw: Option<&Leaf>,
 ) -> Result<(Circuit, String, Option<PathBuf>), String> {
-    let builtin = || {
-        (
-            Circuit::builtin(),
-            "built-in preamp".to_string(),
-            None,
-        )
-    };
+    let builtin = || (Circuit::builtin(), "built-in preamp".to_string(), None);
     let Some(c) = raw else {
         return Ok(builtin());
     };
