@@ -30,6 +30,9 @@ struct Cluster {
     work: Vec<f64>,
     /// Where this cluster's G_cc^-1 h_c starts in the shared scratch.
     offset: usize,
+    /// Where its nodes' and its neighbours' voltages sit in the solver's voltage vector.
+    node_slots: Vec<usize>,
+    neighbour_slots: Vec<usize>,
 }
 
 /// The device nodes kept as unknowns, the linear clusters eliminated, and the matrices that do it.
@@ -42,12 +45,37 @@ pub struct Condensation {
     pub reduced_of: Vec<Option<usize>>,
     clusters: Vec<Cluster>,
     linear_count: usize,
+    /// Each capacitor's terminals (full numbering; None for ground or a source).
+    caps: Vec<[Option<usize>; 2]>,
+    /// How a capacitor's history current reaches the kept nodes' given currents and the clusters' G_cc^-1 h_c:
+    /// per capacitor, (row, weight) pairs (`Columns`).
+    cap_to_kept: Columns,
+    cap_to_linear: Columns,
+    /// The kept nodes' and the clusters' given currents from the rails, and per volt at the jack.
+    rails_kept: Vec<f64>,
+    rails_linear: Vec<f64>,
+    jack_kept: Vec<f64>,
+    jack_linear: Vec<f64>,
+}
+
+/// A sparse matrix by columns: column k's (row, weight) pairs are `rows[start[k]..start[k + 1]]`.
+#[derive(Clone, Debug, Default)]
+struct Columns {
+    start: Vec<usize>,
+    rows: Vec<usize>,
+    weights: Vec<f64>,
 }
 
 impl Condensation {
     /// Split `size` nodes into the `kept` ones and linear clusters, connected as `links` says (pairs of nodes
-    /// joined by a linear part, either order).
-    pub fn new(size: usize, kept: &[bool], links: &[(usize, usize)]) -> Condensation {
+    /// joined by a linear part, either order); `caps` are the capacitors' terminals, whose history currents
+    /// `given` maps straight to the kept nodes.
+    pub fn new(
+        size: usize,
+        kept: &[bool],
+        links: &[(usize, usize)],
+        caps: &[[Option<usize>; 2]],
+    ) -> Condensation {
         let device: Vec<usize> = (0..size).filter(|&i| kept[i]).collect();
         let mut reduced_of = vec![None; size];
         for (r, &i) in device.iter().enumerate() {
@@ -84,6 +112,8 @@ impl Condensation {
                         feed: Vec::new(),
                         work: Vec::new(),
                         offset: 0,
+                        node_slots: Vec::new(),
+                        neighbour_slots: Vec::new(),
                     });
                     which[r] = Some(clusters.len() - 1);
                     clusters.len() - 1
@@ -117,13 +147,54 @@ impl Condensation {
             c.offset = offset;
             offset += k;
         }
-        Condensation {
+        let linear_count = offset;
+        let mut c = Condensation {
             size,
             device,
             reduced_of,
             clusters,
-            linear_count: offset,
+            linear_count,
+            caps: caps.to_vec(),
+            cap_to_kept: Columns::default(),
+            cap_to_linear: Columns::default(),
+            rails_kept: Vec::new(),
+            rails_linear: vec![0.0; linear_count],
+            jack_kept: Vec::new(),
+            jack_linear: vec![0.0; linear_count],
+        };
+        c.rails_kept = vec![0.0; c.device.len()];
+        c.jack_kept = vec![0.0; c.device.len()];
+        // The pattern of each capacitor's columns: a terminal on a kept node reaches that node; one on a linear
+        // node reaches its cluster's neighbours (kept) and its cluster's nodes (linear).
+        let cluster_of = |node: usize, clusters: &[Cluster]| {
+            clusters.iter().position(|c| c.nodes.contains(&node))
+        };
+        for cap in caps {
+            c.cap_to_kept.start.push(c.cap_to_kept.rows.len());
+            c.cap_to_linear.start.push(c.cap_to_linear.rows.len());
+            let mut kept_rows: Vec<usize> = Vec::new();
+            let mut linear_rows: Vec<usize> = Vec::new();
+            for node in cap.iter().flatten() {
+                if let Some(r) = c.reduced_of[*node] {
+                    kept_rows.push(r);
+                } else if let Some(k) = cluster_of(*node, &c.clusters) {
+                    kept_rows.extend(&c.clusters[k].neighbours_reduced);
+                    let cl = &c.clusters[k];
+                    linear_rows.extend(cl.offset..cl.offset + cl.nodes.len());
+                }
+            }
+            kept_rows.sort_unstable();
+            kept_rows.dedup();
+            linear_rows.sort_unstable();
+            linear_rows.dedup();
+            c.cap_to_kept.weights.extend(kept_rows.iter().map(|_| 0.0));
+            c.cap_to_kept.rows.extend(kept_rows);
+            c.cap_to_linear.weights.extend(linear_rows.iter().map(|_| 0.0));
+            c.cap_to_linear.rows.extend(linear_rows);
         }
+        c.cap_to_kept.start.push(c.cap_to_kept.rows.len());
+        c.cap_to_linear.start.push(c.cap_to_linear.rows.len());
+        c
     }
 
     /// Kept unknowns.
@@ -203,10 +274,102 @@ impl Condensation {
         ok
     }
 
+    /// After `reduce_matrix`: how the rails (`rails`, given currents per node), the jack (`jack`, conductance
+    /// per node to it) and each capacitor's history current reach the kept nodes and the clusters. No
+    /// allocation beyond the scratch `full` (size + 1 long).
+    pub fn prepare_sources(&mut self, rails: &[f64], jack: &[f64], full: &mut [f64]) {
+        let (mut kept, mut linear) = (
+            std::mem::take(&mut self.rails_kept),
+            std::mem::take(&mut self.rails_linear),
+        );
+        self.reduce_given(&rails[..self.size], &mut kept, &mut linear);
+        self.rails_kept = kept;
+        self.rails_linear = linear;
+        let (mut kept, mut linear) = (
+            std::mem::take(&mut self.jack_kept),
+            std::mem::take(&mut self.jack_linear),
+        );
+        self.reduce_given(&jack[..self.size], &mut kept, &mut linear);
+        self.jack_kept = kept;
+        self.jack_linear = linear;
+        // Each capacitor's columns: its unit history current (+1 into a, -1 into b) through the elimination.
+        for k in 0..self.caps.len() {
+            full[..self.size].iter_mut().for_each(|v| *v = 0.0);
+            let [a, b] = self.caps[k];
+            if let Some(a) = a {
+                full[a] += 1.0;
+            }
+            if let Some(b) = b {
+                full[b] -= 1.0;
+            }
+            let (from, to) = (self.cap_to_kept.start[k], self.cap_to_kept.start[k + 1]);
+            for e in from..to {
+                let r = self.cap_to_kept.rows[e];
+                let mut w = full[self.device[r]];
+                for c in &self.clusters {
+                    if let Some(p) = c.neighbours_reduced.iter().position(|&x| x == r) {
+                        for (b, &j) in c.nodes.iter().enumerate() {
+                            w -= c.feed[p * c.nodes.len() + b] * full[j];
+                        }
+                    }
+                }
+                self.cap_to_kept.weights[e] = w;
+            }
+            let (from, to) = (self.cap_to_linear.start[k], self.cap_to_linear.start[k + 1]);
+            for e in from..to {
+                let row = self.cap_to_linear.rows[e];
+                let c = self
+                    .clusters
+                    .iter()
+                    .find(|c| (c.offset..c.offset + c.nodes.len()).contains(&row))
+                    .expect("row of a cluster");
+                let (a, k) = (row - c.offset, c.nodes.len());
+                let mut w = 0.0;
+                for (b, &j) in c.nodes.iter().enumerate() {
+                    w += c.inverse[a * k + b] * full[j];
+                }
+                self.cap_to_linear.weights[e] = w;
+            }
+        }
+    }
+
+    /// This sample's given currents of the kept nodes (`kept`) and G_cc^-1 h_c of the clusters (`linear`), from
+    /// the jack's voltage and the capacitors' history currents.
+    #[inline(always)]
+    pub fn given<L: Lane>(&self, jack: L, history: &[L], kept: &mut [L], linear: &mut [L]) {
+        for ((out, rail), per_volt) in kept.iter_mut().zip(&self.rails_kept).zip(&self.jack_kept) {
+            *out = L::splat(*per_volt).madd(jack, L::splat(*rail));
+        }
+        for ((out, rail), per_volt) in linear
+            .iter_mut()
+            .zip(&self.rails_linear)
+            .zip(&self.jack_linear)
+        {
+            *out = L::splat(*per_volt).madd(jack, L::splat(*rail));
+        }
+        for (k, h) in history.iter().enumerate() {
+            let (from, to) = (self.cap_to_kept.start[k], self.cap_to_kept.start[k + 1]);
+            for (r, w) in self.cap_to_kept.rows[from..to]
+                .iter()
+                .zip(&self.cap_to_kept.weights[from..to])
+            {
+                kept[*r] = L::splat(*w).madd(*h, kept[*r]);
+            }
+            let (from, to) = (self.cap_to_linear.start[k], self.cap_to_linear.start[k + 1]);
+            for (r, w) in self.cap_to_linear.rows[from..to]
+                .iter()
+                .zip(&self.cap_to_linear.weights[from..to])
+            {
+                linear[*r] = L::splat(*w).madd(*h, linear[*r]);
+            }
+        }
+    }
+
     /// The kept nodes' given currents, `reduced[r] = full[device[r]] - G_Dc G_cc^-1 h_c`, and G_cc^-1 h_c of each
     /// cluster into `scratch` (for `recover`).
     #[inline(always)]
     pub fn reduce_given<L: Lane>(&self, full: &[L], reduced: &mut [L], scratch: &mut [L]) {
+        debug_assert!(full.len() >= self.size);
         for (r, &i) in self.device.iter().enumerate() {
             reduced[r] = full[i];
         }
@@ -229,18 +392,26 @@ impl Condensation {
         }
     }
 
+    /// Where each node's voltage sits in the vector `recover` writes (`slots[node]`).
+    pub fn set_slots(&mut self, slots: &[usize]) {
+        for c in self.clusters.iter_mut() {
+            c.node_slots = c.nodes.iter().map(|&i| slots[i]).collect();
+            c.neighbour_slots = c.neighbours.iter().map(|&i| slots[i]).collect();
+        }
+    }
+
     /// The linear nodes' voltages from the kept ones: v_c = G_cc^-1 h_c - G_cc^-1 G_cD v_D, with `scratch` from
-    /// `reduce_given`. `volts[offset + node]` holds each node's voltage.
+    /// `given`, in the slots `set_slots` gave.
     #[inline(always)]
-    pub fn recover<L: Lane>(&self, scratch: &[L], volts: &mut [L], offset: usize) {
+    pub fn recover<L: Lane>(&self, scratch: &[L], volts: &mut [L]) {
         for c in &self.clusters {
             let nb = c.neighbours.len();
-            for (a, &i) in c.nodes.iter().enumerate() {
+            for (a, &slot) in c.node_slots.iter().enumerate() {
                 let mut v = scratch[c.offset + a];
-                for (q, &j) in c.neighbours.iter().enumerate() {
-                    v = (-L::splat(c.recover[a * nb + q])).madd(volts[offset + j], v);
+                for (q, &from) in c.neighbour_slots.iter().enumerate() {
+                    v = (-L::splat(c.recover[a * nb + q])).madd(volts[from], v);
                 }
-                volts[offset + i] = v;
+                volts[slot] = v;
             }
         }
     }
@@ -330,7 +501,7 @@ mod tests {
             g[i * n + i] += 0.1 * (i + 1) as f64;
         }
         let h: Vec<f64> = (0..n).map(|i| (i as f64 * 1.7).sin()).collect();
-        let mut c = Condensation::new(n, &kept, &links);
+        let mut c = Condensation::new(n, &kept, &links, &[]);
         let m = c.kept();
         let mut reduced = vec![0.0; m * m];
         assert!(c.reduce_matrix(&g, &mut reduced));
@@ -342,7 +513,8 @@ mod tests {
         for (r, &i) in c.device.iter().enumerate() {
             volts[i] = hr[r];
         }
-        c.recover(&scratch, &mut volts, 0);
+        c.set_slots(&(0..n).collect::<Vec<_>>());
+        c.recover(&scratch, &mut volts);
         let (mut whole, mut x) = (g.clone(), h.clone());
         dense_solve(&mut whole, &mut x, n);
         for i in 0..n {

@@ -131,12 +131,10 @@ impl<L: Lane> PairEval<L> {
     }
 }
 
-/// A capacitor in the solver: where its terminals' voltages are read (`volts`) and its history current goes
-/// (`given`; a spare slot for a terminal on ground or a source), and its companion conductance.
+/// A capacitor in the solver: where its terminals' voltages are read (`volts`), and its companion conductance.
 #[derive(Clone, Copy, Debug)]
 struct CapSlot {
     volts_at: [usize; 2],
-    given_at: [usize; 2],
     conductance: f64,
 }
 
@@ -189,9 +187,13 @@ impl Stamper for Pattern {
 }
 
 /// Where things sit in the solver's working vectors.
+///
+/// `volts`: the band's half-width of zeros, the kept nodes (in the order of the unknowns), another half-width of
+/// zeros, the linear nodes, then the sources. Slot 0 (a zero that nothing writes) reads as ground. The kept
+/// nodes' voltages are then one contiguous run, padded each side, which the residual's row products read whole.
 struct Layout {
-    /// `volts`: slot 0 reads 0 V (ground), then every node (full numbering), then every source.
-    node: usize,
+    /// Each node's slot in `volts`.
+    slots: Vec<usize>,
     source: usize,
     volts_len: usize,
     /// `step` (the kept unknowns, then the band's half-width of zeros): a slot that is zero after every
@@ -204,13 +206,24 @@ struct Layout {
 }
 
 impl Layout {
-    fn new(shape: &BandShape, nodes: usize, sources: usize) -> Layout {
+    fn new(shape: &BandShape, reduced_of: &[Option<usize>], sources: usize) -> Layout {
         let (m, half) = (shape.size, shape.half);
         let band = shape.rows() * shape.width();
+        let mut next_linear = m + 2 * half;
+        let slots: Vec<usize> = reduced_of
+            .iter()
+            .map(|r| match r {
+                Some(r) => half + r,
+                None => {
+                    next_linear += 1;
+                    next_linear - 1
+                }
+            })
+            .collect();
         Layout {
-            node: 1,
-            source: 1 + nodes,
-            volts_len: 1 + nodes + sources,
+            slots,
+            source: next_linear,
+            volts_len: next_linear + sources,
             zero_step: m,
             spare_step: m + half,
             step_len: m + half + 1,
@@ -220,7 +233,7 @@ impl Layout {
     }
     fn volts(&self, t: Terminal) -> usize {
         match t {
-            Terminal::Node(i) => self.node + i,
+            Terminal::Node(i) => self.slots[i],
             Terminal::Source(s) => self.source + s,
             Terminal::Ground => 0,
         }
@@ -251,6 +264,9 @@ pub struct Nodal<L: Lane> {
     g: Vec<f64>,
     rails: Vec<f64>,
     jack: Vec<(usize, f64)>,
+    /// Conductance of each node to the jack, and a scratch vector, both node-long (plus one).
+    jack_per_node: Vec<f64>,
+    scratch: Vec<f64>,
     /// Source voltages now (stepped during the DC solve) and as the circuit gives them.
     source_volts: Vec<f64>,
     full_source_volts: Vec<f64>,
@@ -279,12 +295,10 @@ pub struct Nodal<L: Lane> {
     /// The DC operating point found at set-up, where `reset` starts from.
     rest_x: Vec<L>,
     // Working storage (no allocation while running).
-    /// Every voltage (`Layout`), and the kept nodes' voltages padded with the band's half-width of zeros each
-    /// side (for the residual's row products).
+    /// Every voltage (`Layout`) and each node's slot in it.
     volts: Vec<L>,
-    kept_volts: Vec<L>,
-    /// Given currents into every node (one spare slot after them), and into the kept nodes after elimination.
-    given_full: Vec<L>,
+    slots: Vec<usize>,
+    /// Given currents into the kept nodes after elimination.
     given: Vec<L>,
     /// G_cc^-1 h_c of every linear cluster.
     linear: Vec<L>,
@@ -325,7 +339,12 @@ impl<L: Lane> Nodal<L> {
             }
         }
         kept[net.clamp_node] = true;
-        let condensed = Condensation::new(n, &kept, &links.0);
+        let cap_terminals: Vec<[Option<usize>; 2]> = net
+            .capacitors
+            .iter()
+            .map(|c| [c.a.node(), c.b.node()])
+            .collect();
+        let condensed = Condensation::new(n, &kept, &links.0, &cap_terminals);
         let m = condensed.kept();
         let reduced = |t: Terminal| t.node().and_then(|i| condensed.reduced_of[i]);
         // The band's shape: the kept nodes' own links, the fill of elimination, every valve's terminals on each
@@ -352,7 +371,7 @@ impl<L: Lane> Nodal<L> {
                     .into(),
             )
         })?;
-        let layout = Layout::new(&shape, n, net.sources.len());
+        let layout = Layout::new(&shape, &condensed.reduced_of, net.sources.len());
         let valves: Vec<ValveSlot> = net
             .valves
             .iter()
@@ -384,7 +403,6 @@ impl<L: Lane> Nodal<L> {
             .iter()
             .map(|c| CapSlot {
                 volts_at: [layout.volts(c.a), layout.volts(c.b)],
-                given_at: [c.a.node().unwrap_or(n), c.b.node().unwrap_or(n)],
                 conductance: 0.0,
             })
             .collect();
@@ -427,6 +445,8 @@ impl<L: Lane> Nodal<L> {
             g: vec![0.0; layout.jacobian_len],
             rails: vec![0.0; n],
             jack: Vec::with_capacity(n),
+            jack_per_node: vec![0.0; n],
+            scratch: vec![0.0; n + 1],
             full_source_volts: source_volts.clone(),
             source_volts,
             history: vec![L::default(); caps.len()],
@@ -446,9 +466,7 @@ impl<L: Lane> Nodal<L> {
             rest_x: vec![L::default(); m],
             predict_limit,
             volts: vec![L::default(); layout.volts_len],
-            kept_volts: vec![L::default(); m + 2 * shape.half],
-            // One spare slot after the nodes for capacitor terminals on ground or a source.
-            given_full: vec![L::default(); n + 1],
+            slots: layout.slots.clone(),
             given: vec![L::default(); m],
             linear: vec![L::default(); condensed.linear_count()],
             jack_at,
@@ -471,6 +489,7 @@ impl<L: Lane> Nodal<L> {
             condensed,
             net,
         };
+        model.condensed.set_slots(&model.slots);
         if let GainControl::Attenuator(law) = model.net.gain_control {
             model.attenuation = law.fraction(0.5);
         }
@@ -512,6 +531,12 @@ impl<L: Lane> Nodal<L> {
         // A cluster with no DC path leaves its inverse undefined; the solve then fails and says so.
         self.condensed
             .reduce_matrix(&self.g_full, &mut self.g_reduced);
+        self.jack_per_node.iter_mut().for_each(|v| *v = 0.0);
+        for &(node, g) in &self.jack {
+            self.jack_per_node[node] += g;
+        }
+        self.condensed
+            .prepare_sources(&self.rails, &self.jack_per_node, &mut self.scratch);
         // The kept nodes' matrix in band storage, then the identity rows after it.
         let m = self.shape.size;
         self.g.iter_mut().for_each(|v| *v = 0.0);
@@ -694,22 +719,10 @@ impl<L: Lane> Nodal<L> {
     /// evaluations.
     #[inline(always)]
     fn solve(&mut self, input: L, max_iterations: u32) -> bool {
-        // Given currents: the rails, the jack through its conductances, the capacitors' histories; then the
-        // linear clusters eliminated.
-        for (g, r) in self.given_full.iter_mut().zip(&self.rails) {
-            *g = L::splat(*r);
-        }
-        let spare = self.given_full.len() - 1;
-        self.given_full[spare] = L::default();
-        for &(node, g) in &self.jack {
-            self.given_full[node] = L::splat(g).madd(input, self.given_full[node]);
-        }
-        for (slot, h) in self.caps.iter().zip(&self.history) {
-            self.given_full[slot.given_at[0]] += *h;
-            self.given_full[slot.given_at[1]] -= *h;
-        }
+        // Given currents of the kept nodes (and the clusters' share for their recovery): the rails, the jack
+        // through its conductances, the capacitors' histories, each through the elimination.
         self.condensed
-            .reduce_given(&self.given_full, &mut self.given, &mut self.linear);
+            .given(input, &self.history, &mut self.given, &mut self.linear);
         self.volts[self.jack_at] = input;
         let mut x = std::mem::take(&mut self.x);
         let converged = match self.shape.half {
@@ -721,7 +734,7 @@ impl<L: Lane> Nodal<L> {
         };
         self.x = x;
         // The linear nodes from the solved device nodes.
-        self.condensed.recover(&self.linear, &mut self.volts, 1);
+        self.condensed.recover(&self.linear, &mut self.volts);
         converged
     }
 
@@ -730,10 +743,7 @@ impl<L: Lane> Nodal<L> {
     #[inline(always)]
     fn evaluate(&mut self, x: &[L], keep: L::Mask) {
         let half = self.shape.half;
-        for (r, &i) in self.condensed.device.iter().enumerate() {
-            self.volts[1 + i] = x[r];
-        }
-        self.kept_volts[half..half + x.len()].copy_from_slice(x);
+        self.volts[half..half + x.len()].copy_from_slice(x);
         let s = x[self.pair_unknown];
         let mut pair = PairEval::<L>::default();
         for lane in 0..L::WIDTH {
@@ -762,8 +772,7 @@ impl<L: Lane> Nodal<L> {
         } else {
             pair
         };
-        self.volts[1 + self.pair_node] = self.pair_eval.volts;
-        self.kept_volts[half + self.pair_unknown] = self.pair_eval.volts;
+        self.volts[half + self.pair_unknown] = self.pair_eval.volts;
         for (slot, out) in self.valves.iter().zip(self.valve_eval.iter_mut()) {
             let [vp, vg, vk] = slot.volts_at.map(|i| self.volts[i]);
             let (vpk, vgk) = (vp - vk, vg - vk);
@@ -793,7 +802,7 @@ impl<L: Lane> Nodal<L> {
         let (rows, _) = self.g.as_chunks::<W>();
         for ((row, window), (r, given)) in rows[..n]
             .iter()
-            .zip(self.kept_volts.windows(W))
+            .zip(self.volts.windows(W))
             .zip(self.step.iter_mut().zip(&self.given))
         {
             let mut sum = -*given;
@@ -1001,12 +1010,8 @@ impl<L: Lane> Nodal<L> {
     #[inline(always)]
     fn settle_volts(&mut self, x: &[L]) {
         let half = self.shape.half;
-        for (r, &i) in self.condensed.device.iter().enumerate() {
-            self.volts[1 + i] = x[r];
-        }
-        self.kept_volts[half..half + x.len()].copy_from_slice(x);
-        self.volts[1 + self.pair_node] = self.pair_eval.volts;
-        self.kept_volts[half + self.pair_unknown] = self.pair_eval.volts;
+        self.volts[half..half + x.len()].copy_from_slice(x);
+        self.volts[half + self.pair_unknown] = self.pair_eval.volts;
     }
 
     /// Newton iterations and convergence of the last sample.
@@ -1017,7 +1022,7 @@ impl<L: Lane> Nodal<L> {
     /// Voltage of node `node` (V) in every lane, after the last sample.
     #[inline(always)]
     pub fn node_volts(&self, node: usize) -> L {
-        self.volts[1 + node]
+        self.volts[self.slots[node]]
     }
 
     /// Currents of valve `index` (in the netlist's order) after the last sample.
