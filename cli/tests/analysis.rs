@@ -82,7 +82,7 @@ fn bad_inputs_get_one_clear_error() {
             &[
                 "suggest",
                 "--goal",
-                "clamp-level=+90,-90",
+                "clamp-level=+190,-190",
                 "--input-volts",
                 "1",
                 "--set",

@@ -293,7 +293,7 @@ fn probes_are_in_volts_and_follow_the_circuit() {
     let dir = scratch("small-signal");
     let input = dir.join("in.wav");
     let rate = 48_000;
-    // 1 kHz at 10 mV peak (volts_at_full_scale = 1 V in the built-in circuit).
+    // 1 kHz at 10 mV peak through the one-stage preset (volts_at_full_scale = 1 V there).
     let x = sine(rate, 0.3, 1000.0, 0.01);
     write_wav(&input, rate, 32, true, std::slice::from_ref(&x));
     let probe = |name: &str| {
@@ -309,6 +309,11 @@ fn probes_are_in_volts_and_follow_the_circuit() {
             "level=0.5",
             "--set",
             "position=0",
+            "--circuit",
+            concat!(
+                env!("CARGO_MANIFEST_DIR"),
+                "/../presets-demo/one-stage.toml"
+            ),
             "--probe",
             name,
         ]));

@@ -189,7 +189,9 @@ impl Condensation {
             linear_rows.dedup();
             c.cap_to_kept.weights.extend(kept_rows.iter().map(|_| 0.0));
             c.cap_to_kept.rows.extend(kept_rows);
-            c.cap_to_linear.weights.extend(linear_rows.iter().map(|_| 0.0));
+            c.cap_to_linear
+                .weights
+                .extend(linear_rows.iter().map(|_| 0.0));
             c.cap_to_linear.rows.extend(linear_rows);
         }
         c.cap_to_kept.start.push(c.cap_to_kept.rows.len());

@@ -20,7 +20,6 @@ pub mod measure;
 pub mod netlist;
 pub mod nodal;
 pub mod oversampling;
-pub mod packed;
 pub mod parts;
 pub mod pot;
 pub mod smoothing;

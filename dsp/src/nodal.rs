@@ -276,9 +276,7 @@ pub struct Nodal<L: Lane> {
     /// Each capacitor's history current h (A).
     history: Vec<L>,
     valves: Vec<ValveSlot>,
-    /// The pair's node (full numbering) and its unknown (kept numbering), the band positions of its column,
-    /// and its diagonal.
-    pair_node: usize,
+    /// The pair's unknown (kept numbering), the band positions of its column, and its diagonal.
     pair_unknown: usize,
     pair_column: Vec<usize>,
     pair_diagonal: usize,
@@ -453,7 +451,6 @@ impl<L: Lane> Nodal<L> {
             caps,
             valve_eval: vec![ValveEval::default(); valves.len()],
             valves,
-            pair_node,
             pair_unknown,
             pair_column,
             pair_diagonal,
