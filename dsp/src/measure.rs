@@ -181,7 +181,7 @@ mod tests {
 
     #[test]
     fn hard_clipped_sine_thd_matches_computed_value() {
-        // BRIEF section 6: a sine hard-clipped at +/-0.5 of its peak has THD_F 23.29% (computed).
+        // docs/model.md section 6: a sine hard-clipped at +/-0.5 of its peak has THD_F 23.29% (computed).
         let rate = 96_000.0;
         let f = 1000.0;
         let s: Vec<f64> = (0..96_000)

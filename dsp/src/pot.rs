@@ -12,7 +12,7 @@ pub const POT_END_RESISTANCE: f64 = 1.0;
 pub enum PotLaw {
     /// y = x.
     Linear,
-    /// y = (81^x - 1) / 80: 10% at mid-travel (BRIEF section 3).
+    /// y = (81^x - 1) / 80: 10% at mid-travel (docs/model.md section 3).
     Log,
 }
 

@@ -1,6 +1,6 @@
 //! Shared helpers for Breakdown's cross-crate and external-reference tests.
 //!
-//! The device formulas here are typed again from their published form (BRIEF section 4) rather than called
+//! The device formulas here are typed again from their published form (docs/model.md section 4) rather than called
 //! from the model, so a test comparing the two checks the model against the paper, not against itself.
 
 pub mod tone_stack;
@@ -20,7 +20,7 @@ pub struct KorenSet {
     pub kvb: f64,
 }
 
-/// Koren's published 12AX7 set: mu 100, ex 1.4, kg1 1060, kp 600, kvb 300 (BRIEF section 4).
+/// Koren's published 12AX7 set: mu 100, ex 1.4, kg1 1060, kp 600, kvb 300 (docs/model.md section 4).
 pub const KOREN_12AX7: KorenSet = KorenSet {
     mu: 100.0,
     ex: 1.4,

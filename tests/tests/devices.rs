@@ -13,7 +13,7 @@ fn ax7() -> Triode {
 
 #[test]
 fn koren_12ax7_point_250v_minus_2v() {
-    // Koren 1996 (Glass Audio 8(5)) with his published 12AX7 set; BRIEF section 4 states that the form
+    // Koren 1996 (Glass Audio 8(5)) with his published 12AX7 set; docs/model.md section 4 states that the form
     // Ip = 2 E1^ex / kg1 gives 0.952 mA at Vpk 250 V, Vgk -2 V.
     let model = ax7().plate_current(250.0, -2.0);
     println!(
@@ -79,7 +79,7 @@ fn analytic_derivatives_match_numerical_ones() {
 #[test]
 fn datasheet_point_250v_minus_2v_within_25_percent() {
     // RCA/GE 12AX7 datasheet, class A1 amplifier, per section: Vp 250 V, Vg -2 V: Ip 1.2 mA, gm 1600 umho,
-    // rp 62.5 k, mu 100 (BRIEF section 4). Koren's set is stated to be within about 25% here.
+    // rp 62.5 k, mu 100 (docs/model.md section 4). Koren's set is stated to be within about 25% here.
     let s = small_signal(|p, g| ax7().plate_current(p, g), 250.0, -2.0);
     println!(
         "12AX7 at 250 V, -2 V: Ip {:.3} mA (sheet 1.2), gm {:.0} umho (sheet 1600), rp {:.1} k (sheet 62.5), mu {:.1} (sheet 100)",
@@ -96,7 +96,7 @@ fn datasheet_point_250v_minus_2v_within_25_percent() {
     assert!(rel(s.gm, 1600e-6) < 0.25, "gm {}", s.gm);
     assert!(rel(s.rp, 62.5e3) < 0.25, "rp {}", s.rp);
     assert!(rel(s.mu, 100.0) < 0.25, "mu {}", s.mu);
-    // BRIEF section 4 quotes Koren's figures at this point: 0.95 mA, gm 1670 umho, rp 53.7 k.
+    // docs/model.md section 4 quotes Koren's figures at this point: 0.95 mA, gm 1670 umho, rp 53.7 k.
     assert!(rel(s.gm, 1670e-6) < 0.02, "gm {}", s.gm);
     assert!(rel(s.rp, 53.7e3) < 0.02, "rp {}", s.rp);
 }
@@ -104,7 +104,7 @@ fn datasheet_point_250v_minus_2v_within_25_percent() {
 #[test]
 fn koren_set_under_reads_at_low_plate_voltage() {
     // Documented weakness, shown rather than hidden: the 12AX7 datasheet (class A1, Vp 100 V, Vg -1 V) gives
-    // 0.5 mA, gm 1250 umho, rp 80 k; Koren's set reads only about 0.10 mA there (BRIEF section 4).
+    // 0.5 mA, gm 1250 umho, rp 80 k; Koren's set reads only about 0.10 mA there (docs/model.md section 4).
     let s = small_signal(|p, g| ax7().plate_current(p, g), 100.0, -1.0);
     println!(
         "12AX7 at 100 V, -1 V: model Ip {:.3} mA against the datasheet's 0.5 mA ({:.0}% of it); gm {:.0} umho \
@@ -125,7 +125,7 @@ fn koren_set_under_reads_at_low_plate_voltage() {
     );
 }
 
-/// BRIEF section 4 check values: 1W 1N47xxA datasheet limits (Vz, Izt, Zzt, Izk, Zzk).
+/// docs/model.md section 4 check values: 1W 1N47xxA datasheet limits (Vz, Izt, Zzt, Izk, Zzk).
 const CHECK_PARTS: [(&str, ZenerDatasheet); 3] = [
     (
         "1N4733A",
@@ -161,7 +161,7 @@ const CHECK_PARTS: [(&str, ZenerDatasheet); 3] = [
 
 #[test]
 fn fitted_zeners_reproduce_their_datasheets() {
-    // 1N47xxA family datasheet limits (BRIEF section 4): the fit must give Vz at Izt, Zzt at Izt and Zzk at Izk
+    // 1N47xxA family datasheet limits (docs/model.md section 4): the fit must give Vz at Izt, Zzt at Izt and Zzk at Izk
     // within 2%, except Zzt where the fit falls back to rs = 0 (then only the knee figure is honoured).
     for (name, sheet) in CHECK_PARTS {
         let z = Zener::fit(&sheet);
@@ -183,7 +183,7 @@ fn fitted_zeners_reproduce_their_datasheets() {
             assert!(r_izt > sheet.zzt, "{name}: fallback should read above Zzt");
         }
     }
-    // 1N4733A is the case where the fit falls back to rs = 0 (BRIEF section 4 / issue 2).
+    // 1N4733A is the case where the fit falls back to rs = 0 (docs/model.md section 4).
     assert_eq!(Zener::fit(&CHECK_PARTS[0].1).rs, 0.0);
     assert!(Zener::fit(&CHECK_PARTS[1].1).rs > 0.0);
     assert!(Zener::fit(&CHECK_PARTS[2].1).rs > 0.0);
@@ -191,8 +191,8 @@ fn fitted_zeners_reproduce_their_datasheets() {
 
 #[test]
 fn zener_forward_drop_is_a_silicon_junction() {
-    // Shockley diode law with Is 1e-14 A and Vt 25.852 mV (BRIEF section 4): 0.6-0.8 V at 0.1-10 mA
-    // (BRIEF section 2, common practice for small silicon junctions).
+    // Shockley diode law with Is 1e-14 A and Vt 25.852 mV (docs/model.md section 4): 0.6-0.8 V at 0.1-10 mA
+    // (docs/model.md section 2, common practice for small silicon junctions).
     let z = Zener::fit(&CHECK_PARTS[1].1);
     for &i in &[1e-4, 1e-3, 1e-2] {
         let v = z.voltage_at(i);
@@ -204,7 +204,7 @@ fn zener_forward_drop_is_a_silicon_junction() {
 
 #[test]
 fn family_table_rows_match_the_check_values() {
-    // BRIEF section 4 check values against the rows typed into dsp/src/parts.rs.
+    // docs/model.md section 4 check values against the rows typed into dsp/src/parts.rs.
     for (name, sheet) in CHECK_PARTS {
         let row = FAMILY_1N47XXA
             .rows
@@ -264,7 +264,7 @@ fn fitted(volts: f64) -> Zener {
 
 #[test]
 fn twenty_volt_pair_clamps_near_21_volts_at_test_current() {
-    // Common practice (BRIEF section 2): an antiseries pair clamps near +/-(Vz + one forward drop), so a pair
+    // Common practice (docs/model.md section 2): an antiseries pair clamps near +/-(Vz + one forward drop), so a pair
     // of 20 V parts near +/-21 V. At the parts' test current (12.5 mA) the model must sit within 0.5 V of it.
     let pair = ZenerPair::new(Some(fitted(20.0)), Some(fitted(20.0)));
     let izt = 12.5e-3;
@@ -278,7 +278,7 @@ fn twenty_volt_pair_clamps_near_21_volts_at_test_current() {
     assert!((pos - sum).abs() < 1e-3, "pair {pos} vs parts {sum}");
 
     // At the sub-milliamp currents of a preamp node the pair sits lower, in the knee (datasheet Zzk of
-    // 750 ohm at 0.25 mA, BRIEF section 2): each step down in current lowers the clamp.
+    // 750 ohm at 0.25 mA, docs/model.md section 2): each step down in current lowers the clamp.
     let mut last = pos;
     for &i in &[1e-3, 250e-6, 100e-6, 10e-6] {
         let (p, n) = pair.thresholds_at(i);
@@ -297,7 +297,7 @@ fn twenty_volt_pair_clamps_near_21_volts_at_test_current() {
 
 #[test]
 fn reference_circuit_switch_positions_hold_the_brief_parts() {
-    // BRIEF section 3: position 1 a symmetric pair of 20 V parts, position 2 18 V positive / 5.6 V negative.
+    // docs/model.md section 3: position 1 a symmetric pair of 20 V parts, position 2 18 V positive / 5.6 V negative.
     let engine = Engine::new(
         &Circuit::one_stage(),
         48_000.0,
@@ -323,7 +323,7 @@ fn grid_current_spot_values() {
     // Dempwolf and Zoelzer, DAFx-11, 12AX7 set (Gg 6.177e-4, xi 1.314, Cg 9.901, Ig0 8.025e-8 A), evaluated by
     // hand from the published formula:
     //   Vgk = 0:    Gg (ln 2 / Cg)^xi + Ig0 = 18.85 uA
-    //   Vgk = 0.05: 29.3 uA (the follower's idle point, BRIEF section 3: "about 29 uA")
+    //   Vgk = 0.05: 29.3 uA (the follower's idle point, docs/model.md section 3: "about 29 uA")
     //   Vgk = 1:    ~ Gg + Ig0 = 617.8 uA (softplus ~ Cg Vgk)
     //   Vgk = -2:   Ig0 = 80.25 nA (the exponential term vanishes)
     for &(vgk, want) in &[

@@ -50,7 +50,7 @@ fn silent_run(e: &mut Engine, samples: usize) -> (f64, f64) {
 
 #[test]
 fn silence_in_gives_silence_out_from_the_first_sample() {
-    // BRIEF section 3: the model starts at its DC operating point: silence in, silence out, no thump. "Silence"
+    // docs/model.md section 3: the model starts at its DC operating point: silence in, silence out, no thump. "Silence"
     // here is below 1 uV at every voltage probe (-120 dBV, far below hearing and below a 24-bit converter's
     // floor for a 20 V full scale, common practice) and below 1 nA through the Zeners.
     for quality in Quality::ALL {
@@ -86,7 +86,7 @@ fn silence_in_gives_silence_out_from_the_first_sample() {
             );
         }
     }
-    // The at-wiper placement too (BRIEF section 5), at the default quality.
+    // The at-wiper placement too (docs/model.md section 5), at the default quality.
     let mut circuit = Circuit::one_stage();
     circuit.clamp.placement = breakdown_dsp::Placement::AtWiper;
     let mut e = Engine::new(&circuit, 48_000.0, Quality::X4, Settings::default()).expect("circuit");
@@ -97,9 +97,9 @@ fn silence_in_gives_silence_out_from_the_first_sample() {
 #[test]
 fn works_at_every_supported_rate() {
     // Issue 2: any sample rate from 22.05 kHz to 384 kHz. At each rate: silence stays silent, a small 220 Hz tone
-    // sees the stage's gain (BRIEF section 3: about 55 from grid to plate; the log gain pot at 0.8 passes
+    // sees the stage's gain (docs/model.md section 3: about 55 from grid to plate; the log gain pot at 0.8 passes
     // (81^0.8 - 1)/80 of the input; the follower and the feed resistor lose a little more), and a tone driven
-    // past the threshold of the 20 V pair clamps near +/-21 V (common practice, BRIEF section 2).
+    // past the threshold of the 20 V pair clamps near +/-21 V (common practice, docs/model.md section 2).
     let pot = (81f64.powf(0.8) - 1.0) / 80.0;
     let mut gains = Vec::new();
     for rate in RATES {
@@ -414,7 +414,7 @@ proptest! {
     })]
     /// Random bursts of hostile samples inside a normal signal never give a non-finite or runaway output. The
     /// clamp node itself (at the internal rate) stays within the 20 V pair's reach: +/-21 V (common practice,
-    /// BRIEF section 2) with the same 0.5 V allowance as the device test. The band-limited output may ring past
+    /// docs/model.md section 2) with the same 0.5 V allowance as the device test. The band-limited output may ring past
     /// that when the node jumps within a few internal samples, but never past the decimator's BIBO bound.
     #[test]
     fn hostile_bursts_stay_finite_and_bounded(

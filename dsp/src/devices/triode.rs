@@ -47,7 +47,7 @@ impl TubeType {
         match self {
             // N. Koren, "Improved vacuum tube models for SPICE simulations", Glass Audio 8(5), 1996.
             TubeType::Ax7 => Triode::koren(100.0, 1.4, 1060.0, 600.0, 300.0),
-            // Same author's 12AT7 and 12AU7 sets (from memory, see BRIEF section 4).
+            // Same author's 12AT7 and 12AU7 sets (from memory, see docs/model.md section 4).
             TubeType::At7 => Triode::koren(60.0, 1.35, 460.0, 300.0, 300.0),
             TubeType::Au7 => Triode::koren(21.5, 1.3, 1180.0, 84.0, 300.0),
         }

@@ -2,9 +2,9 @@
 
 use crate::arith::{Arith, Separate};
 
-/// Thermal voltage used throughout (V), BRIEF section 4.
+/// Thermal voltage used throughout (V), docs/model.md section 4.
 pub const THERMAL_VOLTAGE: f64 = 0.025852;
-/// Saturation current of the forward junction (A), BRIEF section 4.
+/// Saturation current of the forward junction (A), docs/model.md section 4.
 pub const SATURATION_CURRENT: f64 = 1e-14;
 /// Current scale of the asinh map used by the junction tables (A).
 pub const CURRENT_SCALE: f64 = 1e-12;
@@ -26,7 +26,7 @@ pub struct ZenerDatasheet {
 }
 
 /// Zener, Ij = Is (exp(Vj/Vt) - 1) - Izt (exp(-(Vj + Vzj)/(nbv Vt)) - exp(-Vzj/(nbv Vt))) + GMIN Vj, V = Vj + rs I
-/// (BRIEF section 4; GMIN as in SPICE).
+/// (docs/model.md section 4; GMIN as in SPICE).
 #[derive(Clone, Copy, Debug, PartialEq)]
 pub struct Zener {
     /// Breakdown voltage at the test current (V).
@@ -43,7 +43,7 @@ pub struct Zener {
 
 impl Zener {
     /// Fit to datasheet figures: nbv = (Zzk - Zzt) / (Vt (1/Izk - 1/Izt)), rs = Zzt - nbv Vt / Izt,
-    /// falling back to rs = 0, nbv = Zzk Izk / Vt when rs would be negative (BRIEF section 4).
+    /// falling back to rs = 0, nbv = Zzk Izk / Vt when rs would be negative (docs/model.md section 4).
     pub fn fit(sheet: &ZenerDatasheet) -> Zener {
         let vt = THERMAL_VOLTAGE;
         let mut nbv = (sheet.zzk - sheet.zzt) / (vt * (1.0 / sheet.izk - 1.0 / sheet.izt));
@@ -601,7 +601,7 @@ mod tests {
         }
     }
 
-    /// 1N47xxA datasheet limits (Vz, Izt, Zzt, Izk, Zzk), BRIEF section 4: 1N4733A, 1N4747A, 1N4749A.
+    /// 1N47xxA datasheet limits (Vz, Izt, Zzt, Izk, Zzk), docs/model.md section 4: 1N4733A, 1N4747A, 1N4749A.
     fn part(volts: f64) -> Zener {
         let sheet = match volts {
             5.1 => (5.1, 0.049, 7.0, 0.001, 550.0),
@@ -618,7 +618,7 @@ mod tests {
         })
     }
 
-    /// `port` against the device equation itself (BRIEF section 4): the pair carries I = CURRENT_SCALE sinh s
+    /// `port` against the device equation itself (docs/model.md section 4): the pair carries I = CURRENT_SCALE sinh s
     /// (f64::sinh, and f64::cosh for dI/ds), the negative part drops Vn(I) = Vj(I) + rs I and the positive
     /// part Vp(-I), each Vj solved exactly by `Zener::junction_voltage_at`, and dV/ds = dI/ds (1/g + rs) per
     /// part with g = dIj/dVj of the device equation.
