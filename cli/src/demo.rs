@@ -14,7 +14,7 @@ pub const DEMO_PLAN: &str = include_str!("../../presets-demo/demo-plan.toml");
 /// Demo DI sample rate (Hz).
 pub const DEMO_RATE: u32 = 48_000;
 /// Peak volts of the demo DI at the input jack: a hot passive pickup dug in hard [common practice], enough
-/// to drive the reference stage past the 20 V pair at full gain.
+/// to drive the built-in preamp well past the 20 V pair at full gain.
 pub const DEMO_PEAK_VOLTS: f64 = 0.8;
 
 #[derive(clap::Args)]

@@ -45,7 +45,7 @@ struct Cli {
 
 #[derive(Subcommand)]
 enum Command {
-    /// Render a WAV file through the stage (listening output or a node voltage in volts).
+    /// Render a WAV file through the circuit (listening output or a node voltage in volts).
     Render(render::RenderArgs),
     /// Print speed figures: ns per sample and real-time factor per quality.
     Bench(bench::BenchArgs),

@@ -1,4 +1,4 @@
-//! `breakdown render`: a WAV file through the stage, writing the listening output or a node voltage in volts.
+//! `breakdown render`: a WAV file through the circuit, writing the listening output or a node voltage in volts.
 //!
 //! Each channel gets its own engine (a stereo DI is two amps), rendered in parallel threads. The output is
 //! latency-compensated: output sample n lines up with input sample n.
@@ -27,7 +27,7 @@ const PROGRESS_AFTER: Duration = Duration::from_millis(700);
 
 #[derive(clap::Args)]
 pub struct RenderArgs {
-    /// Circuit file (TOML; keys in docs/model.md section 5); the built-in reference circuit when left out.
+    /// Circuit file (TOML; keys in docs/model.md section 5); the built-in preamp (presets-demo/builtin-preamp.toml) when left out.
     #[arg(long, value_name = "FILE")]
     pub circuit: Option<PathBuf>,
     /// Input WAV (8/16/24/32-bit integer or 32/64-bit float, mono or stereo, 22.05 to 384 kHz, at most 60
@@ -46,8 +46,10 @@ pub struct RenderArgs {
     /// the circuit's switch list, counted from 0). Repeat for several.
     #[arg(long = "set", value_name = "NAME=VALUE")]
     pub set: Vec<String>,
-    /// Write a node voltage in volts (1.0 = 1 V) instead of the listening output: clamp or wiper.
-    #[arg(long, value_name = "clamp|wiper")]
+    /// Write a node's value in volts (1.0 = 1 V; the pair's current in amps) instead of the listening output:
+    /// clamp, wiper, tone (with a tone stack), plate1, plate2, ... (one per preamp stage), zener-current,
+    /// positive-part, negative-part.
+    #[arg(long, value_name = "NODE")]
     pub probe: Option<String>,
     /// Oversampling factor: 1, 2, 4, 8 or 16 (default 4: the alias products of a hard-clamped tone stay 60 dB
     /// down, docs/model.md section 6).
@@ -70,15 +72,26 @@ pub struct Job {
     pub output: PathBuf,
 }
 
-/// Probe from "clamp" or "wiper"; `None` is the listening output.
-pub fn parse_probe(text: Option<&str>) -> Result<Probe, String> {
-    match text.map(|t| t.trim().to_ascii_lowercase()) {
-        None => Ok(Probe::Listen),
-        Some(t) if t == "clamp" => Ok(Probe::Clamp),
-        Some(t) if t == "wiper" => Ok(Probe::Wiper),
-        Some(t) => Err(format!(
-            "--probe {}: unknown probe (known: clamp, wiper)",
-            breakdown_dsp::units::clip(&t, 20)
+/// The probe named `text` among the nodes `circuit` has (clamp, wiper, tone, plate1.., the pair's current and
+/// part volts); `None` is the listening output.
+pub fn parse_probe(text: Option<&str>, circuit: &Circuit) -> Result<Probe, String> {
+    let Some(text) = text.map(|t| t.trim().to_ascii_lowercase()) else {
+        return Ok(Probe::Listen);
+    };
+    let known: Vec<Probe> = Probe::available(circuit)
+        .into_iter()
+        .filter(|p| *p != Probe::Listen)
+        .collect();
+    match Probe::parse(&text) {
+        Some(p) if known.contains(&p) => Ok(p),
+        _ => Err(format!(
+            "--probe {}: not a node of this circuit (known: {})",
+            breakdown_dsp::units::clip(&text, 20),
+            known
+                .iter()
+                .map(|p| p.name())
+                .collect::<Vec<_>>()
+                .join(", ")
         )),
     }
 }
@@ -86,12 +99,12 @@ pub fn parse_probe(text: Option<&str>) -> Result<Probe, String> {
 /// Check every argument (circuit, settings, probe, quality, calibration, file names) before any audio is read.
 pub fn prepare(args: &RenderArgs) -> Result<Job, String> {
     let quality = parse_quality(&args.quality)?;
-    let probe = parse_probe(args.probe.as_deref())?;
     let input = pick(args.input.as_ref(), args.di.as_ref(), "--di", "--input")
         .ok_or("give the input WAV: --input FILE")?;
     let output = pick(args.output.as_ref(), args.out.as_ref(), "--out", "--output")
         .ok_or("give the output WAV: --output FILE")?;
     let mut circuit = load_circuit(args.circuit.as_deref())?;
+    let probe = parse_probe(args.probe.as_deref(), &circuit)?;
     let calibration = args
         .calibration
         .apply(&mut circuit, &circuit_source(args.circuit.as_ref()))?;
