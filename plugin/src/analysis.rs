@@ -187,6 +187,36 @@ mod tests {
     }
 
     #[test]
+    fn the_editor_reads_the_same_thd_f_as_the_report() {
+        // One definition (breakdown_dsp::measure::thd_f, the report's THD_F): a 1 kHz tone clipped unevenly
+        // (+0.6 / -0.3 of its peak, so even and odd harmonics) at 48 kHz, read by the editor's analyser with the
+        // editor's harmonic count and band, and by the report's function on the same samples.
+        let rate = 48_000.0;
+        let s: Vec<f32> = (0..16_384)
+            .map(|n| (2.0 * PI * 1000.0 * n as f64 / rate).sin().clamp(-0.3, 0.6) as f32)
+            .collect();
+        let mut a = Analyser::new(16_384);
+        let editor = a.analyse(
+            &s,
+            rate,
+            crate::editor::spectrum::THD_HARMONICS,
+            crate::editor::spectrum::THD_BAND_HZ,
+        );
+        let samples: Vec<f64> = s.iter().map(|&v| v as f64).collect();
+        let report = breakdown_dsp::measure::thd_f(&samples, rate, 1000.0);
+        assert!(
+            (editor.thd_f / report.thd_f - 1.0).abs() < 0.01,
+            "editor THD_F {} against the report's {}",
+            editor.thd_f,
+            report.thd_f
+        );
+        assert_eq!(
+            crate::editor::spectrum::THD_HARMONICS,
+            *breakdown_dsp::measure::THD_F_HARMONICS.end()
+        );
+    }
+
+    #[test]
     fn pure_sine_amplitude_and_no_distortion() {
         // A sine of amplitude 0.5 reads 0.5 (-6.02 dBFS) and THD_F near 0 (general reference math).
         let rate = 48_000.0;

@@ -8,7 +8,7 @@ mod circuit_panel;
 mod controls;
 mod ratings;
 mod scope;
-mod spectrum;
+pub(crate) mod spectrum;
 mod widgets;
 
 pub use about::SAFETY;
