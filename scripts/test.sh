@@ -1,7 +1,9 @@
 #!/usr/bin/env bash
 # Breakdown's whole test suite on a fresh Debian machine with Rust: installs the system packages the tests use
 # (ngspice for the cross-check, Chromium for the report test, the plugin's X11/OpenGL/audio headers, Python's
-# pedalboard as a general-purpose VST3 host), then runs every test of the workspace in release mode.
+# pedalboard as a general-purpose VST3 host), then checks formatting and lints (warnings
+# denied), runs every test of the workspace in release mode and a short smoke run of the benchmark, printing the
+# time of each part.
 set -euo pipefail
 cd "$(dirname "$0")/.."
 
