@@ -104,7 +104,7 @@ pub fn parts_list(
         lines.push(Line {
             item: "coupling capacitor".into(),
             position: "all".into(),
-            value: format!("{:.0} nF film", c.coupling_cap * 1e9),
+            value: format!("{} film", breakdown_dsp::units::si(c.coupling_cap, "F")),
             part_number: "-".into(),
             orientation: "non-polarised".into(),
             worst_case: format!(
