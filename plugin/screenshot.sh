@@ -7,7 +7,7 @@ cd "$(dirname "$0")/.."
 cargo build --release -p breakdown --features standalone --bin breakdown-standalone
 mkdir -p docs
 out="$(pwd)/docs/editor.png"
-BREAKDOWN_DEMO_INPUT=1 xvfb-run -a -s "-screen 0 1280x800x24" sh -c '
+BREAKDOWN_DEMO_INPUT=1 xvfb-run -a -s "-screen 0 1400x1000x24" sh -c '
     ./target/release/breakdown-standalone --backend dummy --audio-layout 2 --sample-rate 48000 --period-size 512 &
     pid=$!
     # Wait for the window, then give the scope and the loudness meters a few seconds of signal.

@@ -1,174 +1,141 @@
-//! WAV reading and writing for the command-line tools.
-//!
-//! Reads 8/16/24/32-bit integer and 32-bit float WAV, mono or stereo, at any rate, into `f32` channels
-//! (full scale = 1.0). Writes 32-bit float or 24-bit integer WAV. Every error names the file. Writing goes to a
-//! temporary file in the same folder that is renamed over the target only when complete, so a failed write
-//! never leaves a half-written file behind.
+//! WAV files for the command-line tools: reading goes through the project's one reader
+//! (`breakdown_dsp::wav`), with each command's own rules on silence and level; writing makes 32-bit float or
+//! 24-bit integer WAV, complete or not at all (`crate::files::write_atomic`: a regular file is replaced only
+//! when the new one is complete, a device node or FIFO is written in place).
 
 // Not every subcommand uses every function.
 #![allow(dead_code)]
 
-use std::fs::File;
-use std::io::{BufReader, BufWriter};
-use std::path::{Path, PathBuf};
+pub use breakdown_dsp::wav::Audio;
+use breakdown_dsp::wav::{self, Limits};
+use std::io::Write;
+use std::path::Path;
 
-/// Audio in full-scale units (1.0 = 0 dBFS), one `Vec` per channel, all the same length.
-#[derive(Clone, Debug, PartialEq)]
-pub struct Audio {
-    pub rate: u32,
-    pub channels: Vec<Vec<f32>>,
+/// What a command makes of a silent file.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub enum Silence {
+    /// Silence is a valid input (a render of silence is silence).
+    Allow,
+    /// Silence makes the job meaningless: refuse with this reason.
+    Refuse(&'static str),
 }
 
-impl Audio {
-    /// Frames (samples per channel).
-    pub fn frames(&self) -> usize {
-        self.channels.first().map_or(0, Vec::len)
+/// Read a WAV file (see `breakdown_dsp::wav` for what is read and refused), print what was tolerated on
+/// stderr as "note: ...", and apply `silence`. `volts_at_full_scale` is the input calibration, named when a
+/// sample lies far beyond full scale; messages name the file as `shown`.
+pub fn read_input(
+    path: &Path,
+    shown: &str,
+    volts_at_full_scale: Option<f64>,
+    silence: Silence,
+) -> Result<Audio, String> {
+    let limits = Limits {
+        volts_at_full_scale,
+        ..Limits::default()
+    };
+    let w = wav::read_file(path, shown, &limits).map_err(|e| e.0)?;
+    for n in &w.notes {
+        eprintln!("note: '{shown}': {n}");
     }
-
-    /// Duration in seconds.
-    pub fn seconds(&self) -> f64 {
-        if self.rate == 0 {
-            0.0
-        } else {
-            self.frames() as f64 / self.rate as f64
+    if let Silence::Refuse(why) = silence {
+        if w.audio.frames() == 0 {
+            return Err(format!("'{shown}' holds no audio (0 frames); {why}"));
         }
-    }
-}
-
-fn io_reason(e: &std::io::Error) -> String {
-    match e.kind() {
-        std::io::ErrorKind::NotFound => "No such file".into(),
-        std::io::ErrorKind::PermissionDenied => "permission denied".into(),
-        _ => e.to_string(),
-    }
-}
-
-fn hound_reason(e: &hound::Error) -> String {
-    match e {
-        hound::Error::IoError(io) if io.kind() == std::io::ErrorKind::UnexpectedEof => {
-            "the file ends early (truncated)".into()
-        }
-        hound::Error::IoError(io) => io_reason(io),
-        hound::Error::FormatError(m) => (*m).to_string(),
-        hound::Error::Unsupported => {
-            "unsupported sample format (Breakdown reads 16/24/32-bit integer and 32-bit float PCM)"
-                .into()
-        }
-        other => other.to_string(),
-    }
-}
-
-/// Read a WAV file: 8/16/24/32-bit integer or 32-bit float, mono or stereo, any rate.
-pub fn read_wav(path: impl AsRef<Path>) -> Result<Audio, String> {
-    let path = path.as_ref();
-    let shown = path.display();
-    if path.is_dir() {
-        return Err(format!("cannot open '{shown}': it is a folder, not a file"));
-    }
-    let file = File::open(path).map_err(|e| format!("cannot open '{shown}': {}", io_reason(&e)))?;
-    let reader = hound::WavReader::new(BufReader::new(file))
-        .map_err(|e| format!("'{shown}' is not a WAV file: {}", hound_reason(&e)))?;
-    let spec = reader.spec();
-    let count = spec.channels as usize;
-    if count == 0 || count > 2 {
-        return Err(format!(
-            "'{shown}' has {count} channels; Breakdown takes mono or stereo"
-        ));
-    }
-    if spec.sample_rate == 0 {
-        return Err(format!("'{shown}' declares a sample rate of 0 Hz"));
-    }
-    let frames = reader.duration() as usize;
-    let mut channels: Vec<Vec<f32>> = (0..count).map(|_| Vec::with_capacity(frames)).collect();
-    let damaged = |e: hound::Error| format!("'{shown}' cannot be read: {}", hound_reason(&e));
-    match (spec.sample_format, spec.bits_per_sample) {
-        (hound::SampleFormat::Float, 32) => {
-            let mut reader = reader;
-            for (n, s) in reader.samples::<f32>().enumerate() {
-                channels[n % count].push(s.map_err(damaged)?);
-            }
-        }
-        (hound::SampleFormat::Int, bits @ (8 | 16 | 24 | 32)) => {
-            let scale = 1.0 / (1u64 << (bits - 1)) as f64;
-            let mut reader = reader;
-            for (n, s) in reader.samples::<i32>().enumerate() {
-                channels[n % count].push((s.map_err(damaged)? as f64 * scale) as f32);
-            }
-        }
-        (format, bits) => {
-            let kind = match format {
-                hound::SampleFormat::Float => "float",
-                hound::SampleFormat::Int => "integer",
-            };
+        if w.audio.is_silent() {
             return Err(format!(
-                "'{shown}' is {bits}-bit {kind}; Breakdown reads 16/24/32-bit integer and 32-bit float WAV"
+                "'{shown}' is silent (every sample below {} full scale, one step of 24-bit audio); {why}",
+                breakdown_dsp::units::significant(wav::SILENCE, 3)
             ));
         }
     }
-    // A final incomplete frame (odd sample count in a stereo file) is dropped.
-    let len = channels.iter().map(Vec::len).min().unwrap_or(0);
-    for c in &mut channels {
-        c.truncate(len);
+    Ok(w.audio)
+}
+
+/// Read a WAV file with the default rules (silence allowed), naming it by its path.
+pub fn read_wav(path: impl AsRef<Path>) -> Result<Audio, String> {
+    let path = path.as_ref();
+    read_input(path, &path.display().to_string(), None, Silence::Allow)
+}
+
+/// Largest WAV data chunk (bytes): the 32-bit RIFF size field.
+const MAX_DATA_BYTES: u64 = u32::MAX as u64 - 64;
+
+/// Refuse, before rendering, an output too large for a WAV file.
+pub fn check_size(
+    path: &Path,
+    frames: usize,
+    channels: usize,
+    bytes_per_sample: usize,
+) -> Result<(), String> {
+    let bytes = frames as u64 * channels as u64 * bytes_per_sample as u64;
+    if bytes > MAX_DATA_BYTES {
+        return Err(format!(
+            "cannot write '{}': {} of audio exceeds the 4 GiB a WAV file can hold; render a shorter input",
+            path.display(),
+            breakdown_dsp::units::si(bytes as f64, "B")
+        ));
     }
-    Ok(Audio {
-        rate: spec.sample_rate,
-        channels,
-    })
+    Ok(())
 }
 
 /// Write 32-bit float WAV (samples as given, 1.0 = full scale).
 pub fn write_wav_f32(path: impl AsRef<Path>, audio: &Audio) -> Result<(), String> {
-    write_with(
-        path.as_ref(),
-        audio,
-        32,
-        hound::SampleFormat::Float,
-        |w, x| w.write_sample(x),
-    )
+    write_with(path.as_ref(), audio, Encoding::Float32)
 }
 
 /// Write 24-bit integer WAV (samples limited to full scale; non-finite samples become 0).
 pub fn write_wav_i24(path: impl AsRef<Path>, audio: &Audio) -> Result<(), String> {
-    const FULL: f64 = 8_388_608.0; // 2^23
-    write_with(
-        path.as_ref(),
-        audio,
-        24,
-        hound::SampleFormat::Int,
-        |w, x| {
-            let x = if x.is_finite() { x as f64 } else { 0.0 };
-            let v = (x * FULL).round().clamp(-FULL, FULL - 1.0) as i32;
-            w.write_sample(v)
-        },
-    )
+    write_with(path.as_ref(), audio, Encoding::Int24)
 }
 
-type Writer = hound::WavWriter<BufWriter<File>>;
+#[derive(Clone, Copy)]
+enum Encoding {
+    Float32,
+    Int24,
+}
 
-fn temp_path_for(path: &Path) -> Result<PathBuf, String> {
-    let name = path
-        .file_name()
-        .ok_or_else(|| format!("cannot write '{}': not a file name", path.display()))?;
-    let folder = match path.parent() {
-        Some(p) if !p.as_os_str().is_empty() => p.to_path_buf(),
-        _ => PathBuf::from("."),
+/// The WAV header (RIFF, fmt, for float a fact chunk, data) for `frames` frames: PCM (format 1) for integers,
+/// IEEE float (format 3, with the fact chunk the RIFF specification asks of non-PCM formats).
+fn header(audio: &Audio, encoding: Encoding) -> Vec<u8> {
+    let channels = audio.channels.len() as u16;
+    let (tag, bits): (u16, u16) = match encoding {
+        Encoding::Float32 => (3, 32),
+        Encoding::Int24 => (1, 24),
     };
-    let mut temp = std::ffi::OsString::from(".");
-    temp.push(name);
-    temp.push(format!(".partial-{}", std::process::id()));
-    Ok(folder.join(temp))
+    let align = channels * bits / 8;
+    let data = audio.frames() as u32 * align as u32;
+    let mut fmt = Vec::new();
+    fmt.extend_from_slice(&tag.to_le_bytes());
+    fmt.extend_from_slice(&channels.to_le_bytes());
+    fmt.extend_from_slice(&audio.rate.to_le_bytes());
+    fmt.extend_from_slice(&(audio.rate * align as u32).to_le_bytes());
+    fmt.extend_from_slice(&align.to_le_bytes());
+    fmt.extend_from_slice(&bits.to_le_bytes());
+    let mut chunks: Vec<u8> = Vec::new();
+    let mut chunk = |id: &[u8; 4], body: &[u8], len: u32| {
+        chunks.extend_from_slice(id);
+        chunks.extend_from_slice(&len.to_le_bytes());
+        chunks.extend_from_slice(body);
+    };
+    if matches!(encoding, Encoding::Float32) {
+        fmt.extend_from_slice(&0u16.to_le_bytes());
+        chunk(b"fmt ", &fmt, fmt.len() as u32);
+        chunk(b"fact", &(audio.frames() as u32).to_le_bytes(), 4);
+    } else {
+        chunk(b"fmt ", &fmt, fmt.len() as u32);
+    }
+    chunk(b"data", &[], data);
+    let mut out = b"RIFF".to_vec();
+    out.extend_from_slice(&(4 + chunks.len() as u32 + data + (data & 1)).to_le_bytes());
+    out.extend_from_slice(b"WAVE");
+    out.extend(chunks);
+    out
 }
 
-fn write_with(
-    path: &Path,
-    audio: &Audio,
-    bits: u16,
-    format: hound::SampleFormat,
-    mut put: impl FnMut(&mut Writer, f32) -> Result<(), hound::Error>,
-) -> Result<(), String> {
+fn write_with(path: &Path, audio: &Audio, encoding: Encoding) -> Result<(), String> {
     let shown = path.display();
     let count = audio.channels.len();
-    if count == 0 || count > u16::MAX as usize {
+    if count == 0 || count > wav::MAX_CHANNELS {
         return Err(format!("cannot write '{shown}': {count} channels"));
     }
     if audio.rate == 0 {
@@ -178,39 +145,44 @@ fn write_with(
     if audio.channels.iter().any(|c| c.len() != frames) {
         return Err(format!("cannot write '{shown}': channels differ in length"));
     }
-    if path.is_dir() {
-        return Err(format!("cannot write '{shown}': it is a folder"));
-    }
-    let spec = hound::WavSpec {
-        channels: count as u16,
-        sample_rate: audio.rate,
-        bits_per_sample: bits,
-        sample_format: format,
+    let bytes = match encoding {
+        Encoding::Float32 => 4,
+        Encoding::Int24 => 3,
     };
-    let temp = temp_path_for(path)?;
-    let result = (|| -> Result<(), String> {
-        let file = File::create(&temp)
-            .map_err(|e| format!("cannot write '{shown}': {}", io_reason(&e)))?;
-        let failed = |e: hound::Error| format!("cannot write '{shown}': {}", hound_reason(&e));
-        let mut writer = hound::WavWriter::new(BufWriter::new(file), spec).map_err(failed)?;
-        for n in 0..frames {
-            for c in &audio.channels {
-                put(&mut writer, c[n]).map_err(failed)?;
+    check_size(path, frames, count, bytes)?;
+    crate::files::write_atomic(path, |w: &mut dyn Write| {
+        w.write_all(&header(audio, encoding))?;
+        let mut block = Vec::with_capacity(4096 * count * bytes);
+        for start in (0..frames).step_by(4096) {
+            block.clear();
+            for n in start..(start + 4096).min(frames) {
+                for c in &audio.channels {
+                    let x = c[n];
+                    match encoding {
+                        Encoding::Float32 => block.extend_from_slice(&x.to_le_bytes()),
+                        Encoding::Int24 => {
+                            const FULL: f64 = 8_388_608.0; // 2^23
+                            let x = if x.is_finite() { x as f64 } else { 0.0 };
+                            let v = (x * FULL).round().clamp(-FULL, FULL - 1.0) as i32;
+                            block.extend_from_slice(&v.to_le_bytes()[..3]);
+                        }
+                    }
+                }
             }
+            w.write_all(&block)?;
         }
-        writer.finalize().map_err(failed)?;
-        std::fs::rename(&temp, path)
-            .map_err(|e| format!("cannot write '{shown}': {}", io_reason(&e)))
-    })();
-    if result.is_err() {
-        let _ = std::fs::remove_file(&temp);
-    }
-    result
+        // A data chunk of odd size takes a pad byte.
+        if (frames * count * bytes) % 2 == 1 {
+            w.write_all(&[0])?;
+        }
+        Ok(())
+    })
 }
 
 #[cfg(test)]
 mod tests {
     use super::*;
+    use std::path::PathBuf;
 
     /// A fresh, empty folder for one test.
     fn scratch(name: &str) -> PathBuf {
@@ -307,7 +279,7 @@ mod tests {
         let path = dir.join("out.wav");
         let audio = Audio {
             rate: 96_000,
-            channels: vec![vec![0.1, -0.2, 7.5, -1e-3], vec![1.0, -1.0, 0.0, 42.0]],
+            channels: vec![vec![0.1, -0.2, 7.5, -1e-3], vec![1.0, -1.0, 0.0, 12.0]],
         };
         write_wav_f32(&path, &audio).unwrap();
         let mut r = hound::WavReader::open(&path).unwrap();
@@ -318,7 +290,7 @@ mod tests {
         );
         assert_eq!(s.sample_format, hound::SampleFormat::Float);
         let got: Vec<f32> = r.samples::<f32>().map(Result::unwrap).collect();
-        assert_eq!(got, vec![0.1, 1.0, -0.2, -1.0, 7.5, 0.0, -1e-3, 42.0]);
+        assert_eq!(got, vec![0.1, 1.0, -0.2, -1.0, 7.5, 0.0, -1e-3, 12.0]);
         assert_eq!(read_wav(&path).unwrap(), audio);
         std::fs::remove_dir_all(dir).unwrap();
     }

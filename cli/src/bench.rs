@@ -57,7 +57,7 @@ pub fn run(args: BenchArgs) -> Result<(), String> {
             args.seconds
         ));
     }
-    let circuit = Circuit::reference();
+    let circuit = Circuit::one_stage();
     let settings = Settings {
         gain: 0.8,
         position: 1,

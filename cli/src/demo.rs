@@ -337,6 +337,7 @@ pub fn run(args: DemoArgs) -> Result<(), String> {
         &plan_path,
         Options {
             output: Some(output),
+            calibration: None,
             jobs: args.jobs,
             quiet: args.quiet,
             extra_files: vec![
@@ -427,6 +428,7 @@ fn bench(args: &DemoArgs) -> Result<(), String> {
         &plan_path,
         Options {
             output: None,
+            calibration: None,
             jobs: args.jobs,
             quiet: args.quiet,
             extra_files: Vec::new(),

@@ -4,11 +4,25 @@
 use clap::{Parser, Subcommand};
 use std::process::ExitCode;
 
+/// The safety text (docs/model.md section 8, whole), carried by the help, every advice and every report.
+macro_rules! safety_text {
+    () => {
+        "Valve amplifiers run at several hundred volts and their filter capacitors stay charged after \
+         power-off; the numbers this tool prints are a simulation, not a measurement of a live chassis. Work on \
+         a live amp only with the training to do so; drain and verify capacitors; follow local electrical \
+         codes; when in doubt, have a qualified technician do the work. Check part voltage and power ratings \
+         against the values the tool reports, with margin."
+    };
+}
+
 mod analysis;
 mod audio;
 mod bench;
+mod calibrate;
 mod compare;
 mod demo;
+mod files;
+mod options;
 mod render;
 mod report;
 
@@ -17,10 +31,12 @@ mod report;
     name = "breakdown",
     version,
     about = "Hear a Zener clamp after a valve stage before you buy parts: a circuit model in real volts.",
-    after_help = "Safety: valve amplifiers run at several hundred volts and their filter capacitors stay \
-charged after power-off. The numbers this tool prints come from a simulation, not a measurement of a live \
-chassis. Work on a live amp only with the training to do so; drain and verify capacitors; follow local \
-electrical codes; when in doubt, have a qualified technician do the work."
+    after_help = concat!(
+        "Input calibration: a plan's [input] or the command line's --volts-at-full-scale / --input-dbu \
+         overrides the circuit file's [input] volts_at_full_scale (the command line wins over the plan).\n\n",
+        "Safety: ",
+        safety_text!()
+    )
 )]
 struct Cli {
     #[command(subcommand)]
@@ -43,6 +59,8 @@ enum Command {
     Suggest(analysis::SuggestArgs),
     /// Parts list with ratings for the switch layout.
     Parts(analysis::PartsArgs),
+    /// Read a DI and report its peak in volts at the jack under an input calibration.
+    Calibrate(calibrate::CalibrateArgs),
 }
 
 /// Let a closed pipe (`breakdown parts | head`) end the program quietly, as command-line tools do, instead of
@@ -65,6 +83,7 @@ fn quiet_on_closed_pipe() {}
 
 fn main() -> ExitCode {
     quiet_on_closed_pipe();
+    files::install_interrupt_handler();
     let cli = Cli::parse();
     let result = match cli.command {
         Command::Render(a) => render::run(a),
@@ -74,6 +93,7 @@ fn main() -> ExitCode {
         Command::Onset(a) => analysis::onset(a),
         Command::Suggest(a) => analysis::suggest(a),
         Command::Parts(a) => analysis::parts(a),
+        Command::Calibrate(a) => calibrate::run(a),
     };
     match result {
         Ok(()) => ExitCode::SUCCESS,

@@ -5,7 +5,12 @@
 
 use crate::analysis::ratings;
 use crate::analysis::{RatingArgs, SAFETY};
-use crate::audio::{self, Audio};
+use crate::audio::{self, Audio, Silence};
+use crate::files;
+use crate::options::{
+    circuit_source, load_circuit, parse_quality, pick, Calibration, CalibrationArgs,
+};
+use breakdown_dsp::units::{gain_to_db, si};
 use breakdown_dsp::{Circuit, Engine, Meters, Probe, Quality, Settings};
 use std::io::IsTerminal;
 use std::path::{Path, PathBuf};
@@ -22,25 +27,34 @@ const PROGRESS_AFTER: Duration = Duration::from_millis(700);
 
 #[derive(clap::Args)]
 pub struct RenderArgs {
-    /// Circuit file (TOML; keys as in the README's "Circuit files"); the built-in reference circuit when left out.
+    /// Circuit file (TOML; keys in docs/model.md section 5); the built-in reference circuit when left out.
     #[arg(long, value_name = "FILE")]
     pub circuit: Option<PathBuf>,
-    /// Input WAV (16/24/32-bit integer or 32-bit float, mono or stereo, 22.05 to 384 kHz).
-    #[arg(long, value_name = "IN.wav")]
-    pub input: PathBuf,
-    /// Output WAV (32-bit float).
-    #[arg(long, value_name = "OUT.wav")]
-    pub output: PathBuf,
-    /// A setting as name=value: gain=0..1, level=0..1, position=index into the circuit's switch list.
-    /// Repeat for several.
+    /// Input WAV (8/16/24/32-bit integer or 32/64-bit float, mono or stereo, 22.05 to 384 kHz, at most 60
+    /// minutes).
+    #[arg(long, value_name = "IN.wav", required_unless_present = "di")]
+    pub input: Option<PathBuf>,
+    #[arg(long, hide = true, conflicts_with = "input")]
+    pub di: Option<PathBuf>,
+    /// Output WAV (32-bit float). A device node such as /dev/null is written in place; the output may not be
+    /// the input or the circuit file.
+    #[arg(long, value_name = "OUT.wav", required_unless_present = "out")]
+    pub output: Option<PathBuf>,
+    #[arg(long, hide = true, conflicts_with = "output")]
+    pub out: Option<PathBuf>,
+    /// A setting as name=value: gain, level, treble, middle, bass (pot rotations 0..1) or position (index into
+    /// the circuit's switch list, counted from 0). Repeat for several.
     #[arg(long = "set", value_name = "NAME=VALUE")]
     pub set: Vec<String>,
     /// Write a node voltage in volts (1.0 = 1 V) instead of the listening output: clamp or wiper.
     #[arg(long, value_name = "clamp|wiper")]
     pub probe: Option<String>,
-    /// Oversampling factor: 1, 2, 4, 8 or 16.
+    /// Oversampling factor: 1, 2, 4, 8 or 16 (default 4: the alias products of a hard-clamped tone stay 60 dB
+    /// down, docs/model.md section 6).
     #[arg(long, value_name = "1|2|4|8|16", default_value = "4")]
     pub quality: String,
+    #[command(flatten)]
+    pub calibration: CalibrationArgs,
     #[command(flatten)]
     pub ratings: RatingArgs,
 }
@@ -51,18 +65,9 @@ pub struct Job {
     pub settings: Settings,
     pub probe: Probe,
     pub quality: Quality,
-}
-
-/// Quality from "1", "2", "4", "8" or "16" (an "x" in front is accepted).
-pub fn parse_quality(text: &str) -> Result<Quality, String> {
-    let t = text.trim();
-    let t = t.strip_prefix(['x', 'X']).unwrap_or(t);
-    t.parse::<usize>()
-        .ok()
-        .and_then(Quality::from_factor)
-        .ok_or_else(|| {
-            format!("--quality {text}: expected an oversampling factor of 1, 2, 4, 8 or 16")
-        })
+    pub calibration: Calibration,
+    pub input: PathBuf,
+    pub output: PathBuf,
 }
 
 /// Probe from "clamp" or "wiper"; `None` is the listening output.
@@ -71,46 +76,25 @@ pub fn parse_probe(text: Option<&str>) -> Result<Probe, String> {
         None => Ok(Probe::Listen),
         Some(t) if t == "clamp" => Ok(Probe::Clamp),
         Some(t) if t == "wiper" => Ok(Probe::Wiper),
-        Some(t) => Err(format!("--probe {t}: unknown probe (known: clamp, wiper)")),
+        Some(t) => Err(format!(
+            "--probe {}: unknown probe (known: clamp, wiper)",
+            breakdown_dsp::units::clip(&t, 20)
+        )),
     }
 }
 
-/// Fold a multi-line parser message into one line.
-fn one_line(message: &str) -> String {
-    let lines: Vec<&str> = message
-        .lines()
-        .map(str::trim)
-        .filter(|l| !l.is_empty() && !l.starts_with('|') && !l.contains(" | "))
-        .collect();
-    lines.join(": ")
-}
-
-/// Read and validate a circuit file, or the built-in reference circuit.
-pub fn load_circuit(path: Option<&Path>) -> Result<Circuit, String> {
-    let Some(path) = path else {
-        return Ok(Circuit::reference());
-    };
-    let shown = path.display();
-    let text = std::fs::read_to_string(path).map_err(|e| {
-        let reason = match e.kind() {
-            std::io::ErrorKind::NotFound => "No such file".to_string(),
-            std::io::ErrorKind::InvalidData => "not a text file".to_string(),
-            _ => e.to_string(),
-        };
-        format!("cannot open circuit file '{shown}': {reason}")
-    })?;
-    Circuit::from_toml(&text).map_err(|e| {
-        let message = one_line(&e.0);
-        let message = message.strip_prefix("circuit file: ").unwrap_or(&message);
-        format!("circuit file '{shown}': {message}")
-    })
-}
-
-/// Check every argument (circuit, settings, probe, quality) before any audio is read.
+/// Check every argument (circuit, settings, probe, quality, calibration, file names) before any audio is read.
 pub fn prepare(args: &RenderArgs) -> Result<Job, String> {
     let quality = parse_quality(&args.quality)?;
     let probe = parse_probe(args.probe.as_deref())?;
-    let circuit = load_circuit(args.circuit.as_deref())?;
+    let input = pick(args.input.as_ref(), args.di.as_ref(), "--di", "--input")
+        .ok_or("give the input WAV: --input FILE")?;
+    let output = pick(args.output.as_ref(), args.out.as_ref(), "--out", "--output")
+        .ok_or("give the output WAV: --output FILE")?;
+    let mut circuit = load_circuit(args.circuit.as_deref())?;
+    let calibration = args
+        .calibration
+        .apply(&mut circuit, &circuit_source(args.circuit.as_ref()))?;
     let mut settings = Settings::default();
     for s in &args.set {
         settings.set(s).map_err(|e| e.0)?;
@@ -118,39 +102,21 @@ pub fn prepare(args: &RenderArgs) -> Result<Job, String> {
     circuit
         .check_position(settings.position)
         .map_err(|e| format!("--set position: {}", e.0))?;
+    files::check_writable("--output", &output)?;
+    let mut inputs: Vec<(&str, &Path)> = vec![("input", input.as_path())];
+    if let Some(c) = &args.circuit {
+        inputs.push(("circuit", c.as_path()));
+    }
+    files::refuse_overwriting_inputs("--output", &output, &inputs)?;
     Ok(Job {
         circuit,
         settings,
         probe,
         quality,
+        calibration,
+        input,
+        output,
     })
-}
-
-/// Fail early (before a long render) when the output cannot be written there.
-fn check_output(output: &Path, input: &Path) -> Result<(), String> {
-    let shown = output.display();
-    if output.is_dir() {
-        return Err(format!("cannot write '{shown}': it is a folder"));
-    }
-    if output.file_name().is_none() {
-        return Err(format!("cannot write '{shown}': not a file name"));
-    }
-    if let Some(folder) = output.parent().filter(|p| !p.as_os_str().is_empty()) {
-        if !folder.is_dir() {
-            return Err(format!(
-                "cannot write '{shown}': the folder '{}' does not exist",
-                folder.display()
-            ));
-        }
-    }
-    if let (Ok(a), Ok(b)) = (output.canonicalize(), input.canonicalize()) {
-        if a == b {
-            return Err(format!(
-                "'{shown}' is the input file: choose another output name"
-            ));
-        }
-    }
-    Ok(())
 }
 
 /// Render every channel through its own engine, in parallel, latency removed. `progress` counts host samples
@@ -216,15 +182,23 @@ fn progress_bar(total: u64) -> indicatif::ProgressBar {
 pub fn run(args: RenderArgs) -> Result<(), String> {
     let job = prepare(&args)?;
     let source = args.ratings.source()?;
-    check_output(&args.output, &args.input)?;
-    let input = audio::read_wav(&args.input)?;
+    let shown = job.input.display().to_string();
+    let input = audio::read_input(
+        &job.input,
+        &shown,
+        Some(job.calibration.volts_at_full_scale),
+        Silence::Allow,
+    )?;
     if !(MIN_RATE..=MAX_RATE).contains(&input.rate) {
         return Err(format!(
-            "'{}' is at {} Hz; Breakdown renders from {MIN_RATE} to {MAX_RATE} Hz",
-            args.input.display(),
+            "'{shown}' is at {} Hz; Breakdown renders from {MIN_RATE} to {MAX_RATE} Hz",
             input.rate
         ));
     }
+    if input.is_silent() {
+        eprintln!("note: '{shown}' is silent: the output is what the stage makes of silence");
+    }
+    audio::check_size(&job.output, input.frames(), input.channels.len(), 4)?;
     let frames = input.frames();
     let total = (frames * input.channels.len()) as u64;
     let terminal = std::io::stderr().is_terminal();
@@ -256,24 +230,24 @@ pub fn run(args: RenderArgs) -> Result<(), String> {
         rate: input.rate,
         channels,
     };
-    audio::write_wav_f32(&args.output, &result)?;
+    audio::write_wav_f32(&job.output, &result)?;
     let peak = result
         .channels
         .iter()
         .flatten()
         .fold(0.0f32, |m, v| m.max(v.abs()));
     let what = match job.probe {
-        Probe::Clamp => format!("clamp node volts, peak {peak:.2} V"),
-        Probe::Wiper => format!("wiper volts, peak {peak:.2} V"),
+        Probe::Clamp => format!("clamp node volts, peak {}", si(peak as f64, "V")),
+        Probe::Wiper => format!("wiper volts, peak {}", si(peak as f64, "V")),
         _ => format!(
             "listening output, peak {:.1} dBFS",
-            20.0 * (peak.max(1e-10)).log10()
+            gain_to_db(peak as f64).max(-200.0)
         ),
     };
     let position = &job.circuit.clamp.position[job.settings.position].name;
     println!(
         "wrote '{}': {} channel(s), {:.2} s at {} Hz, {what}; gain {}, level {}, position {} ({position}), quality {}x",
-        args.output.display(),
+        job.output.display(),
         result.channels.len(),
         input.seconds(),
         input.rate,
@@ -285,9 +259,7 @@ pub fn run(args: RenderArgs) -> Result<(), String> {
     // The parts' load over this render (every render answers "do these parts survive?").
     let idle = Engine::new(&job.circuit, input.rate as f64, job.quality, job.settings)
         .map_err(|e| e.0)?
-        .stage()
-        .probe()
-        .to_owned();
+        .readout();
     for (channel, m) in meters.iter().enumerate() {
         let r = ratings::ratings_from_meters(
             m,
@@ -302,6 +274,7 @@ pub fn run(args: RenderArgs) -> Result<(), String> {
         }
         print!("{}", ratings::ratings_text(&r));
     }
+    println!("Input calibration: {}.", job.calibration.describe());
     println!("{SAFETY}");
     Ok(())
 }

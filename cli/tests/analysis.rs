@@ -31,6 +31,12 @@ fn onset_writes_map_and_summary() {
         "1",
     ]);
     assert!(ok, "{err}");
+    // The old option names still work and say what they are called now.
+    assert!(err.contains("note: --out is now --output"), "{err}");
+    assert!(
+        err.contains("note: --level-steps is now --input-volts-steps"),
+        "{err}"
+    );
     assert!(out.contains("cleans up below"), "{out}");
     assert!(out.contains("Safety"));
     let csv = std::fs::read_to_string(dir.join("onset.csv")).unwrap();
@@ -47,7 +53,7 @@ fn parts_writes_text_and_csv_with_cautions() {
         "parts",
         "--set",
         "position=2",
-        "--out",
+        "--output",
         dir.to_str().unwrap(),
     ]);
     assert!(ok, "{err}");
@@ -61,12 +67,12 @@ fn parts_writes_text_and_csv_with_cautions() {
 fn bad_inputs_get_one_clear_error() {
     let cases: &[(&[&str], &str)] = &[
         (
-            &["suggest", "--goal", "clamp=+20,-20"],
-            "--di FILE or --input-volts",
+            &["suggest", "--goal", "clamp-level=+20,-20"],
+            "--input DI.wav or --input-volts",
         ),
         (
             &["suggest", "--goal", "loud", "--input-volts", "1"],
-            "expected clamp=",
+            "expected clamp-level=",
         ),
         (
             &["suggest", "--goal", "share=2", "--input-volts", "1"],
@@ -76,7 +82,7 @@ fn bad_inputs_get_one_clear_error() {
             &[
                 "suggest",
                 "--goal",
-                "clamp=+90,-90",
+                "clamp-level=+190,-190",
                 "--input-volts",
                 "1",
                 "--set",
@@ -89,7 +95,7 @@ fn bad_inputs_get_one_clear_error() {
                 "suggest",
                 "--goal",
                 "share=0.2",
-                "--di",
+                "--input",
                 "/nonexistent/di.wav",
             ],
             "cannot open",
@@ -110,6 +116,37 @@ fn bad_inputs_get_one_clear_error() {
         (&["onset", "--set", "position=9"], "past the end"),
         (&["parts", "--input-volts=-1"], "--input-volts"),
         (&["parts", "--rating-watts", "0"], "--rating-watts"),
+        // A negative value reaches the range check, which names the option, the value and the range.
+        (
+            &["parts", "--rating-watts", "-1"],
+            "--rating-watts -1: a power rating must be above 0 W, up to 100 W",
+        ),
+        (
+            &["parts", "--input-volts", "-2"],
+            "--input-volts -2: give a value above 0",
+        ),
+        (
+            &[
+                "suggest",
+                "--goal",
+                "clamp-level=12,6",
+                "--input-volts",
+                "1",
+            ],
+            "clamp-level=+12,-6",
+        ),
+        (
+            &["onset", "--input-volts-steps", "1000"],
+            "--input-volts-steps 1000: give 2 .. 64",
+        ),
+        (
+            &["calibrate", "--input", "/nonexistent/di.wav"],
+            "cannot open",
+        ),
+        (
+            &["calibrate", "--input", "x.wav", "--input-dbu", "90"],
+            "--input-dbu = 90 dBu",
+        ),
     ];
     for (args, needle) in cases {
         let (ok, _, err) = breakdown(args);

@@ -1,8 +1,8 @@
 //! The `breakdown render` command as a user runs it: the built binary on generated WAV files.
 //!
 //! Expected values come from outside the code under test: the device equations and datasheet figures of
-//! BRIEF section 4 (solved here independently), the BRIEF section 3 small-signal gain (computed there with
-//! ngspice), the pot law of BRIEF section 3, and the WAVE format conventions (checked with hound).
+//! docs/model.md section 4 (solved here independently), docs/model.md section 3 small-signal gain (computed there with
+//! ngspice), the pot law of docs/model.md section 3, and the WAVE format conventions (checked with hound).
 
 mod common;
 
@@ -90,7 +90,7 @@ fn s(p: &Path) -> &str {
 }
 
 // ---------------------------------------------------------------------------------------------------------
-// Zener equations of BRIEF section 4, solved here on their own (not with the model's code).
+// Zener equations of docs/model.md section 4, solved here on their own (not with the model's code).
 
 const VT: f64 = 0.025852;
 const IS: f64 = 1e-14;
@@ -102,7 +102,7 @@ struct Part {
     vzj: f64,
 }
 
-/// Datasheet fit of BRIEF section 4 from (Vz, Izt, Zzt, Izk, Zzk).
+/// Datasheet fit of docs/model.md section 4 from (Vz, Izt, Zzt, Izk, Zzk).
 fn fit(vz: f64, izt: f64, zzt: f64, izk: f64, zzk: f64) -> Part {
     let mut nbv = (zzk - zzt) / (VT * (1.0 / izk - 1.0 / izt));
     let mut rs = zzt - nbv * VT / izt;
@@ -152,7 +152,7 @@ fn pair_drop(breaking: &Part, forward: &Part, i: f64) -> f64 {
     breaking.breakdown(i) + forward.forward(i)
 }
 
-/// 1N4747A (20 V), 1N4749A (24 V), 1N4733A (5.1 V): BRIEF section 4 datasheet limits.
+/// 1N4747A (20 V), 1N4749A (24 V), 1N4733A (5.1 V): docs/model.md section 4 datasheet limits.
 fn n4747a() -> Part {
     fit(20.0, 12.5e-3, 22.0, 0.25e-3, 750.0)
 }
@@ -163,7 +163,7 @@ fn n4733a() -> Part {
     fit(5.1, 49e-3, 7.0, 1e-3, 550.0)
 }
 
-/// A circuit file with the reference values of BRIEF section 3 and parts given by full datasheet figures.
+/// A circuit file with the reference values of docs/model.md section 3 and parts given by full datasheet figures.
 fn circuit_file(dir: &Path, volts_at_full_scale: f64) -> PathBuf {
     let text = format!(
         r#"supply_volts = 300.0
@@ -212,7 +212,7 @@ negative = {{ volts = 5.1, izt = 49e-3, zzt = 7.0, izk = 1e-3, zzk = 550.0 }}
 
 // ---------------------------------------------------------------------------------------------------------
 
-/// Driven hard, the clamp node's peaks sit at the pair's drop (BRIEF section 4 equations and 1N47xxA
+/// Driven hard, the clamp node's peaks sit at the pair's drop (docs/model.md section 4 equations and 1N47xxA
 /// datasheet figures). The pair's current at the peak is not known from outside, so the check is against the
 /// drop over the currents this stage can push: from 0.1 mA up to 40 mA (about the most the follower can
 /// source into 4.7 k from a 300 V supply), with 0.5 V allowed for the anti-alias filter's ringing.
@@ -284,8 +284,8 @@ fn clamp_probe_peaks_at_the_pair_drop() {
     assert!(hi - lo > 2.0 * 30.0, "unclamped swing only {hi} .. {lo} V");
 }
 
-/// Small signal, switch off: the clamp probe is the input times the gain-pot fraction (log law of BRIEF
-/// section 3), the stage gain (about 55 grid to plate at 1 kHz, BRIEF section 3, computed with ngspice), the
+/// Small signal, switch off: the clamp probe is the input times the gain-pot fraction (log law of docs/model.md
+/// section 3), the stage gain (about 55 grid to plate at 1 kHz, docs/model.md section 3, computed with ngspice), the
 /// follower (close to 1) and the feed-resistor divider; the wiper probe is the clamp probe times the level pot
 /// fraction. The common-cathode stage inverts: the probe is in antiphase with the input.
 #[test]
@@ -293,7 +293,7 @@ fn probes_are_in_volts_and_follow_the_circuit() {
     let dir = scratch("small-signal");
     let input = dir.join("in.wav");
     let rate = 48_000;
-    // 1 kHz at 10 mV peak (volts_at_full_scale = 1 V in the built-in circuit).
+    // 1 kHz at 10 mV peak through the one-stage preset (volts_at_full_scale = 1 V there).
     let x = sine(rate, 0.3, 1000.0, 0.01);
     write_wav(&input, rate, 32, true, std::slice::from_ref(&x));
     let probe = |name: &str| {
@@ -309,6 +309,11 @@ fn probes_are_in_volts_and_follow_the_circuit() {
             "level=0.5",
             "--set",
             "position=0",
+            "--circuit",
+            concat!(
+                env!("CARGO_MANIFEST_DIR"),
+                "/../presets-demo/one-stage.toml"
+            ),
             "--probe",
             name,
         ]));
@@ -327,7 +332,7 @@ fn probes_are_in_volts_and_follow_the_circuit() {
         }
         xy / xx
     };
-    // Pot law y = (81^x - 1)/80 (BRIEF section 3).
+    // Pot law y = (81^x - 1)/80 (docs/model.md section 3).
     let law = |p: f64| (81f64.powf(p) - 1.0) / 80.0;
     let gain_fraction = law(0.8);
     // Across-pot: clamp node to ground is the 1 M pot with the 1 M load across its lower part; 4.7 k feed.
@@ -339,7 +344,7 @@ fn probes_are_in_volts_and_follow_the_circuit() {
     let measured = fit(&clamp) / 1.0; // input volts = sample value (1 V full scale)
     assert!(
         (measured / expected - 1.0).abs() < 0.10,
-        "clamp gain {measured}, expected about {expected} (BRIEF: 'about 55', 10% allowed)"
+        "clamp gain {measured}, expected about {expected} (docs/model.md section 3: 'about 55', 10% allowed)"
     );
     let ratio = fit(&wiper) / fit(&clamp);
     let expected_ratio = lower / to_ground;
@@ -401,7 +406,7 @@ fn probe_is_sample_aligned_with_the_input() {
             peak < 0.0,
             "common-cathode stage inverts; peak deviation {peak}"
         );
-        // Silence before the click stays at the operating point (BRIEF section 3: no thump).
+        // Silence before the click stays at the operating point (docs/model.md section 3: no thump).
         let early = y[..at - 100]
             .iter()
             .fold(0.0f64, |m, &v| m.max((v as f64 - rest).abs()));

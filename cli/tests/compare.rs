@@ -204,7 +204,7 @@ fn report_json_and_csv_carry_the_same_numbers() {
         let p2p: f64 = row[col("clamp_peak_to_peak_V")].parse().unwrap();
         assert!((p2p - r["clamp_peak_to_peak_volts"].as_f64().unwrap()).abs() < 1e-3);
     }
-    // The safety text of BRIEF section 8 is in every report.
+    // The safety text of docs/model.md section 8 is in every report.
     let html = std::fs::read_to_string(out.join("report.html")).unwrap();
     assert!(html.contains("filter capacitors stay charged after power-off"));
     assert!(json["safety"]
@@ -212,7 +212,7 @@ fn report_json_and_csv_carry_the_same_numbers() {
         .unwrap()
         .contains("qualified technician"));
     // Physical sanity from the datasheet model: an 8.2 V pair at 1 mA clamps between 7 and 9.5 V each way
-    // (Vz minus the knee drop plus a forward drop of about 0.6-0.8 V, BRIEF section 2).
+    // (Vz minus the knee drop plus a forward drop of about 0.6-0.8 V, docs/model.md section 2).
     let v = &json["variants"][2];
     let up = v["threshold_positive_volts"].as_f64().unwrap();
     let down = v["threshold_negative_volts"].as_f64().unwrap();
@@ -220,9 +220,17 @@ fn report_json_and_csv_carry_the_same_numbers() {
         (7.0..9.5).contains(&up) && (-9.5..-7.0).contains(&down),
         "{up} {down}"
     );
-    // THD readout states its harmonic count and band: 1 kHz up to 20 kHz is harmonics 2..=20.
-    assert_eq!(v["tone"]["highest_harmonic"].as_u64(), Some(20));
-    assert_eq!(v["tone"]["band_hz"].as_f64(), Some(20_000.0));
+    // THD_F counts harmonics 2-10 everywhere (docs/model.md section 6), and the report says so.
+    assert_eq!(v["tone"]["highest_harmonic"].as_u64(), Some(10));
+    assert!(json["tone"]["method"]
+        .as_str()
+        .unwrap()
+        .contains("harmonics 2 to 10"));
+    assert!(row_has(&rows, col("thd_f_harmonics"), "2-10"));
+}
+
+fn row_has(rows: &[Vec<String>], col: usize, value: &str) -> bool {
+    rows.iter().all(|r| r[col] == value)
 }
 
 /// Split one CSV line (RFC 4180 quoting).
@@ -382,25 +390,31 @@ fn impossible_values_are_named_with_their_line() {
         "gain",
         &PLAN.replace("gain = 1.0", "gain = 1.7"),
         5,
-        &["gain", "impossible"],
+        &["gain = 1.7", "must lie in 0 .. 1", "pot rotation"],
     );
     expect_plan_error(
         "quality",
         &PLAN.replace("quality = 2", "quality = 3"),
         6,
-        &["quality", "impossible"],
+        &[
+            "quality = 3",
+            "expected an oversampling factor: 1, 2, 4, 8 or 16",
+        ],
     );
     expect_plan_error(
         "zener",
         &PLAN.replace("negative = 8.2", "negative = 0.5"),
         26,
-        &["negative", "impossible"],
+        &["variant 3 negative = 500 mV", "must lie in 2.4 V .. 200 V"],
     );
     expect_plan_error(
         "position",
         &PLAN.replace("position = 2", "position = 9"),
         21,
-        &["position", "impossible"],
+        &[
+            "variant 2 position = 9",
+            "expected a switch position counted from 0",
+        ],
     );
 }
 

@@ -27,7 +27,7 @@ fn plucked(n: usize) -> Vec<f32> {
 }
 
 fn engine_block(c: &mut Criterion) {
-    let circuit = Circuit::reference();
+    let circuit = Circuit::one_stage();
     let settings = Settings {
         gain: 0.8,
         position: 1,

@@ -4,7 +4,7 @@
 use breakdown_dsp::{Circuit, Engine, Quality, Settings};
 use std::time::Instant;
 fn main() {
-    let c = Circuit::reference();
+    let c = Circuit::one_stage();
     let arg = |n: usize, default: f64| {
         std::env::args()
             .nth(n)

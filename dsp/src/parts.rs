@@ -32,7 +32,7 @@ macro_rules! rows {
 
 /// 1 W glass/plastic 1N47xxA family: Vz (V), Izt (mA), Zzt (ohm), Izk (mA), Zzk (ohm) maximum limits.
 /// Typed from memory of the common industry datasheet table [memory]; rows 1N4733A, 1N4747A and 1N4749A are
-/// the check values of BRIEF section 4 and are verified by a test.
+/// the check values of docs/model.md section 4 and are verified by a test.
 pub const FAMILY_1N47XXA: Family = Family {
     name: "1N47xxA (1 W)",
     power_rating_watts: 1.0,
@@ -232,9 +232,69 @@ impl Family {
     }
 }
 
+/// How a part's rating compares with the load it carries.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub enum MarginState {
+    /// The rating is at least twice the load.
+    Ok,
+    /// The rating covers the load, but by less than twice.
+    Thin,
+    /// The load exceeds the rating.
+    Over,
+}
+
+impl MarginState {
+    /// "ok", "thin" or "over", as the command line and the plugin print it.
+    pub fn label(self) -> &'static str {
+        match self {
+            MarginState::Ok => "ok",
+            MarginState::Thin => "thin",
+            MarginState::Over => "over",
+        }
+    }
+}
+
+/// Margin of a part: its power rating over the average power it dissipates (a ratio, printed as "12.0x").
+/// Average (not peak) power sets a glass Zener's junction temperature: its thermal time constant (around a
+/// second) is far longer than an audio cycle. No load at all gives an infinite margin.
+pub fn margin(rating_watts: f64, average_watts: f64) -> f64 {
+    if average_watts > 0.0 {
+        rating_watts / average_watts
+    } else {
+        f64::INFINITY
+    }
+}
+
+/// The state of a margin: ok at 2x or more, thin from 1x to 2x, over below 1x (common practice, no single
+/// source: the 2x covers the derating of glass Zener ratings above about 50 C lead temperature and a hot
+/// chassis). A margin that is not a number counts as over.
+pub fn margin_state(margin: f64) -> MarginState {
+    if margin >= 2.0 {
+        MarginState::Ok
+    } else if margin >= 1.0 {
+        MarginState::Thin
+    } else {
+        MarginState::Over
+    }
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    #[test]
+    fn margin_states_follow_the_2x_rule() {
+        // rating / load: 1 W over 0.1 W is 10x (ok), over 0.6 W 1.67x (thin), over 1.5 W 0.67x (over).
+        assert_eq!(margin(1.0, 0.1), 10.0);
+        assert_eq!(margin_state(margin(1.0, 0.1)), MarginState::Ok);
+        assert_eq!(margin_state(margin(1.0, 0.6)), MarginState::Thin);
+        assert_eq!(margin_state(margin(1.0, 1.5)), MarginState::Over);
+        assert_eq!(margin_state(2.0), MarginState::Ok);
+        assert_eq!(margin_state(1.0), MarginState::Thin);
+        assert_eq!(margin_state(f64::NAN), MarginState::Over);
+        assert_eq!(margin(0.5, 0.0), f64::INFINITY);
+        assert_eq!(margin_state(margin(0.5, 0.0)), MarginState::Ok);
+    }
 
     #[test]
     fn e24_series_has_24_values_a_decade() {
@@ -246,7 +306,7 @@ mod tests {
     #[test]
     fn half_watt_family_rows_are_ordered_and_fit() {
         // Table typed from memory [memory]; check its shape: rising voltages, izk below izt, zzk above zzt,
-        // and a finite positive fit of BRIEF section 4 for every row.
+        // and a finite positive fit of docs/model.md section 4 for every row.
         let rows = FAMILY_1N52XXB.rows;
         assert_eq!(rows.len(), 61);
         for w in rows.windows(2) {

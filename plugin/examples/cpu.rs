@@ -1,5 +1,6 @@
-//! CPU cost of the plugin's processor with instant comparison on (all four positions running), at the default
-//! quality: prints the share of one core for a mono and a stereo 48 kHz stream.
+//! CPU cost of the plugin's processor on the built-in circuit with instant comparison on (its three switch
+//! positions and the candidate running), at the default quality: prints the share of one core for a mono and
+//! a stereo 48 kHz stream.
 //! Run: cargo run --release -p breakdown --example cpu [seconds] [case]
 
 use breakdown::runtime::{Controls, Processor, Worker};
@@ -24,8 +25,13 @@ fn main() {
         })
         .collect();
     for (label, models, channels, run_all) in [
-        ("mono in, stereo out, all 4 positions running", 1, 2, true),
-        ("stereo, all 4 positions running", 2, 2, true),
+        (
+            "mono in, stereo out, 3 positions + candidate running",
+            1,
+            2,
+            true,
+        ),
+        ("stereo, 3 positions + candidate running", 2, 2, true),
         (
             "mono in, stereo out, heard + compare-with only",
             1,

@@ -1,6 +1,9 @@
-//! Editor-side analysis (GUI thread, may allocate): a triggered scope window and a windowed spectrum with THD_F
-//! and the even/odd balance of the harmonics.
+//! Editor-side analysis (GUI thread, may allocate): a triggered scope window, a windowed spectrum for the
+//! display and the strongest tone's frequency, and THD_F with the even/odd balance of the harmonics from
+//! `breakdown_dsp::measure::distortion` (the project's one definition).
 
+use breakdown_dsp::measure::distortion;
+use breakdown_dsp::units::gain_to_db;
 use realfft::{RealFftPlanner, RealToComplex};
 use std::sync::Arc;
 
@@ -43,9 +46,10 @@ pub struct Spectrum {
     pub bin_hz: f64,
     /// Strongest tone between 40 Hz and 5 kHz (Hz), if any.
     pub fundamental_hz: Option<f64>,
-    /// Amplitudes of the fundamental (index 0) and harmonics 2.. (full-scale units).
-    pub harmonics: Vec<f64>,
-    /// THD_F = sqrt(sum of harmonic amplitudes squared) / fundamental (IEC 61000-2-2 style).
+    /// Amplitude of the fundamental (full-scale units).
+    pub fundamental_amplitude: f64,
+    /// THD_F = sqrt(sum of the squared amplitudes of harmonics 2..=harmonic_count) / fundamental
+    /// (`breakdown_dsp::measure::distortion`).
     pub thd_f: f64,
     /// Share of harmonic energy in the even harmonics (0..1).
     pub even_share: f64,
@@ -62,10 +66,8 @@ pub struct Analyser {
     input: Vec<f64>,
     output: Vec<realfft::num_complex::Complex<f64>>,
     scratch: Vec<realfft::num_complex::Complex<f64>>,
+    signal: Vec<f64>,
 }
-
-/// Bins either side of a harmonic's centre summed for its energy (covers the Hann main lobe).
-const LOBE: usize = 3;
 
 impl Analyser {
     pub fn new(size: usize) -> Self {
@@ -78,6 +80,7 @@ impl Analyser {
             input: fft.make_input_vec(),
             output: fft.make_output_vec(),
             scratch: fft.make_scratch_vec(),
+            signal: Vec::with_capacity(size),
             fft,
             window,
             size,
@@ -120,7 +123,7 @@ impl Analyser {
         let power: Vec<f64> = self.output.iter().map(|c| c.norm_sqr()).collect();
         spectrum.magnitude_db = power
             .iter()
-            .map(|p| (20.0 * (p.sqrt() * scale).max(1e-12).log10()) as f32)
+            .map(|p| gain_to_db((p.sqrt() * scale).max(1e-12)) as f32)
             .collect();
         let bin_of = |hz: f64| hz / spectrum.bin_hz;
         let lo = bin_of(40.0).ceil() as usize;
@@ -148,45 +151,16 @@ impl Analyser {
         };
         let f0 = (peak as f64 + offset) * spectrum.bin_hz;
         spectrum.fundamental_hz = Some(f0);
-        let band = band_hz.min(rate / 2.0);
-        let count = max_harmonic.min((band / f0).floor() as usize).max(1);
-        spectrum.harmonic_count = count;
-        spectrum.band_hz = band;
-        let lobe_energy = |centre: f64| -> f64 {
-            let c = centre.round() as isize;
-            let from = (c - LOBE as isize).max(1) as usize;
-            let to = ((c + LOBE as isize) as usize).min(power.len() - 1);
-            if from > to {
-                0.0
-            } else {
-                power[from..=to].iter().sum()
-            }
-        };
-        // Sum of |X|^2 over the lobe of a unit-amplitude sine with a Hann window: n^2 * 3 / 32 (Parseval).
-        let unit = (n as f64) * (n as f64) * 3.0 / 32.0;
-        let amplitudes: Vec<f64> = (1..=count)
-            .map(|h| (lobe_energy(bin_of(f0 * h as f64)) / unit).sqrt())
-            .collect();
-        let fundamental = amplitudes[0];
-        let (mut even, mut odd) = (0.0, 0.0);
-        for (k, a) in amplitudes.iter().enumerate().skip(1) {
-            if (k + 1) % 2 == 0 {
-                even += a * a;
-            } else {
-                odd += a * a;
-            }
-        }
-        spectrum.thd_f = if fundamental > 0.0 {
-            (even + odd).sqrt() / fundamental
-        } else {
-            0.0
-        };
-        spectrum.even_share = if even + odd > 0.0 {
-            even / (even + odd)
-        } else {
-            0.0
-        };
-        spectrum.harmonics = amplitudes;
+        // THD_F and the even/odd balance: the dsp crate's definition (docs/model.md section 6), over the same
+        // samples the spectrum shows.
+        self.signal.clear();
+        self.signal.extend(used.iter().map(|&v| v as f64 - mean));
+        let d = distortion(&self.signal, rate, f0, max_harmonic, band_hz);
+        spectrum.thd_f = d.thd_f;
+        spectrum.even_share = d.even_share;
+        spectrum.harmonic_count = d.harmonics;
+        spectrum.band_hz = d.band_hz;
+        spectrum.fundamental_amplitude = d.fundamental_amplitude;
         spectrum
     }
 }
@@ -198,7 +172,7 @@ mod tests {
 
     #[test]
     fn hard_clipped_sine_reads_the_computed_thd() {
-        // BRIEF section 6: a sine hard-clipped at +/-0.5 of its peak has THD_F 23.29% (computed, all harmonics;
+        // docs/model.md section 6: a sine hard-clipped at +/-0.5 of its peak has THD_F 23.29% (computed, all harmonics;
         // 40 harmonics carry all but a negligible part of it).
         let rate = 96_000.0;
         let f = 1000.0;
@@ -221,7 +195,11 @@ mod tests {
             .collect();
         let mut a = Analyser::new(8192);
         let sp = a.analyse(&s, rate, 10, 20_000.0);
-        assert!((sp.harmonics[0] - 0.5).abs() < 0.01, "{}", sp.harmonics[0]);
+        assert!(
+            (sp.fundamental_amplitude - 0.5).abs() < 0.01,
+            "{}",
+            sp.fundamental_amplitude
+        );
         assert!(sp.thd_f < 1e-3);
     }
 

@@ -1,6 +1,7 @@
-//! Breakdown plugin: the `breakdown-dsp` model of a valve gain stage, a cathode follower and a switched
-//! back-to-back Zener clamp, as a CLAP and VST3 plugin with instant, level-matched comparison of the switch
-//! positions and an egui editor.
+//! Breakdown plugin: the `breakdown-dsp` model of the builder's circuit (a preamp, a cathode follower and a
+//! switched back-to-back Zener clamp, read from a circuit file) as a CLAP and VST3 plugin with instant,
+//! level-matched comparison of the circuit's switch positions and a freely set candidate pair, and an egui
+//! editor.
 
 pub mod analysis;
 pub mod editor;
@@ -8,14 +9,18 @@ pub mod loudness;
 pub mod params;
 pub mod presets;
 pub mod runtime;
+pub mod session;
 pub mod shared;
+pub mod state;
+
+pub use params::controls_from;
 
 use nice_plug::prelude::*;
 use nice_plug_egui::{
     create_egui_editor, EguiEditor, EguiEditorState, EguiNiceSettings, RepaintNotifier,
 };
-use params::{BreakdownParams, ListenPoint, Position, SLOTS};
-use runtime::{Controls, Processor, SlotSpec, Worker};
+use params::BreakdownParams;
+use runtime::{BlockActions, Processor, Worker};
 use shared::Shared;
 use std::sync::Arc;
 
@@ -60,10 +65,12 @@ impl DemoTone {
 
 impl Default for Breakdown {
     fn default() -> Self {
+        let params = Arc::new(BreakdownParams::default());
+        let worker = Arc::new(Worker::new(params.session.clone()));
         Breakdown {
-            params: Arc::new(BreakdownParams::default()),
+            params,
             shared: Arc::new(Shared::default()),
-            worker: Arc::new(Worker::default()),
+            worker,
             processor: None,
             editor_state: editor::default_state(),
             #[cfg(feature = "standalone")]
@@ -77,28 +84,19 @@ impl Default for Breakdown {
 
 /// Work for the background thread.
 pub enum Task {
-    /// Build requested models and free retired ones.
+    /// Read a changed session's circuit, build requested models and free retired ones.
     Service,
 }
 
-/// Read the parameters into the control values of one block (no allocation).
-pub fn controls_from(params: &BreakdownParams) -> Controls {
-    let quality = params.quality.value().quality();
-    let specs: [SlotSpec; SLOTS] = std::array::from_fn(|s| SlotSpec {
-        pair: params.pair_volts(Position::ALL[s]),
-        quality,
-    });
-    Controls {
-        gain: params.gain.value() as f64,
-        level: params.level.value() as f64,
-        calibration: params.input_calibration.value() as f64,
-        trim_db: params.trim.value() as f64,
-        heard: params.heard().index(),
-        specs,
-        listen_clamp: params.listen.value() == ListenPoint::ClampNode,
-        level_match: params.level_match.value(),
-        run_all: params.run_all.value(),
-        compare_with: params.compare_with.value().index(),
+impl Breakdown {
+    /// Tell the host and the worker what the last block asks for.
+    fn apply(actions: BlockActions, context: &mut impl ProcessContext<Self>) {
+        if let Some(latency) = actions.latency {
+            context.set_latency_samples(latency);
+        }
+        if actions.service_worker {
+            context.execute_background(Task::Service);
+        }
     }
 }
 
@@ -152,7 +150,7 @@ impl Plugin for Breakdown {
     }
 
     fn filter_state(state: &mut PluginState) {
-        params::repair_state(state);
+        state::repair_state(state);
     }
 
     fn activate(
@@ -161,14 +159,14 @@ impl Plugin for Breakdown {
         buffer_config: &BufferConfig,
         context: &mut impl ActivateContext<Self>,
     ) -> bool {
-        let models = audio_io_layout
+        let channels = audio_io_layout
             .main_input_channels
             .map(|n| n.get() as usize)
             .unwrap_or(1);
         let controls = controls_from(&self.params);
         match Processor::new(
             buffer_config.sample_rate as f64,
-            models,
+            channels,
             &controls,
             self.worker.clone(),
             self.shared.clone(),
@@ -207,12 +205,7 @@ impl Plugin for Breakdown {
             tone.fill(buffer.as_slice(), p.sample_rate());
         }
         let actions = p.process(&controls, buffer.as_slice());
-        if let Some(latency) = actions.latency {
-            context.set_latency_samples(latency);
-        }
-        if actions.service_worker {
-            context.execute_background(Task::Service);
-        }
+        Self::apply(actions, context);
         ProcessStatus::Normal
     }
 }
@@ -220,7 +213,7 @@ impl Plugin for Breakdown {
 impl ClapPlugin for Breakdown {
     const CLAP_ID: &'static str = CLAP_ID;
     const CLAP_DESCRIPTION: Option<&'static str> =
-        Some("Audition back-to-back Zener clamp choices after a cathode follower, level-matched");
+        Some("Audition the Zener clamp positions of your own circuit file, level-matched");
     const CLAP_MANUAL_URL: Option<&'static str> = None;
     const CLAP_SUPPORT_URL: Option<&'static str> = None;
     const CLAP_FEATURES: &'static [ClapFeature] = &[

@@ -1,150 +1,398 @@
-//! The real-time side: one model per compared switch position (and per input channel), crossfades, level match,
-//! meters for the editor. Models for new part values or a new quality are built by a background worker and
-//! handed over through single-slot atomic mailboxes; retired models go back the same way to be freed off the
-//! audio thread. After `Processor::new`, nothing here allocates, frees, locks or blocks.
+//! The real-time side: the compared switch positions of the running circuit and the candidate, each with its
+//! models (one per input channel), crossfades, level match, and the meters for the editor.
+//!
+//! Models for a new circuit, new candidate parts or a new quality are built by a background worker and handed
+//! over through single-slot atomic mailboxes; retired models go back the same way to be freed off the audio
+//! thread. After `Processor::new`, nothing here allocates, frees, locks or blocks.
+//!
+//! Everything the processor does with a model goes through `Models` (build, pots, one sample, reset, meters,
+//! latency): "one model per compared position and channel" lives there and nowhere else, so it can become one
+//! model running the positions side by side without touching the rest.
 
 use crate::loudness::ShortTerm;
-use crate::params::SLOTS;
-use crate::shared::Shared;
+use crate::params::FamilyChoice;
+use crate::session::{CircuitKey, Session, CANDIDATE};
+use crate::shared::{Shared, SLOTS};
 use atomic_float::AtomicF64;
 use breakdown_dsp::circuit::{SwitchPosition, ZenerSpec};
 use breakdown_dsp::engine::CLAMPED_CURRENT;
+use breakdown_dsp::smoothing::Glide;
+use breakdown_dsp::units::{db_to_gain, gain_to_db};
+use breakdown_dsp::Knob;
 use breakdown_dsp::{Circuit, Engine, Probe, Quality, Settings};
 use std::ptr;
-use std::sync::atomic::{AtomicPtr, AtomicU32, AtomicUsize, Ordering};
+use std::sync::atomic::{AtomicBool, AtomicPtr, AtomicU32, AtomicUsize, Ordering};
 use std::sync::{Arc, Mutex};
 
 /// Crossfade time for switching positions, listening points and swapping in rebuilt models (s).
 pub const FADE_SECONDS: f64 = 0.02;
 /// Level-match gain glide time constant (s).
 const MATCH_GLIDE_SECONDS: f64 = 0.3;
-/// Glide time constant for input calibration and output trim (s).
+/// Glide time constant for the input calibration, the output trim and the tone knobs (s).
 const CONTROL_GLIDE_SECONDS: f64 = 0.01;
 /// Quietest loudness that still steers the level match (LUFS); below it the gains hold.
 const MATCH_GATE_LUFS: f64 = -70.0;
 /// Largest level-match cut (dB).
 const MATCH_RANGE_DB: f64 = 30.0;
-/// Models waiting to be handed back for freeing, per position.
+/// Models waiting to be handed back for freeing, per slot.
 const BIN: usize = 4;
+/// Meter windows published per second.
+const METER_SECONDS: f64 = 0.1;
 
-/// What one compared position runs: its pair (positive-clamp volts, negative-clamp volts; None = off) and quality.
-#[derive(Clone, Copy, Debug, PartialEq)]
-pub struct SlotSpec {
-    pub pair: Option<(f64, f64)>,
-    pub quality: Quality,
-}
+// ---------------------------------------------------------------------------------------------------------
+// Controls
 
-/// Control values for one block, read from the parameters.
+/// Pot rotations, 0..1.
 #[derive(Clone, Copy, Debug, PartialEq)]
-pub struct Controls {
+pub struct Pots {
     pub gain: f64,
     pub level: f64,
+    pub treble: f64,
+    pub middle: f64,
+    pub bass: f64,
+}
+
+impl Default for Pots {
+    fn default() -> Self {
+        Pots {
+            gain: 0.8,
+            level: 0.5,
+            treble: 0.5,
+            middle: 0.5,
+            bass: 0.5,
+        }
+    }
+}
+
+/// The freely set candidate pair: Vz of its positive-clamp and negative-clamp parts, and their family.
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub struct Candidate {
+    pub positive: f64,
+    pub negative: f64,
+    pub family: FamilyChoice,
+}
+
+/// Control values for one block, read from the parameters (already clamped to their ranges).
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub struct Controls {
+    pub pots: Pots,
     /// Peak volts at the input jack for full scale.
     pub calibration: f64,
     pub trim_db: f64,
-    /// Index of the heard position.
-    pub heard: usize,
-    pub specs: [SlotSpec; SLOTS],
+    /// Switch position parameter values: 0.. the circuit's positions (past the last one clamps), CANDIDATE.
+    pub position: usize,
+    pub compare_with: usize,
+    /// A/B: hear compare-with instead of position.
+    pub ab: bool,
+    pub candidate: Candidate,
+    pub quality: Quality,
     /// Listen to the clamp node instead of the wiper.
     pub listen_clamp: bool,
     pub level_match: bool,
     /// Run every position all the time (instant comparison). When false, only the heard position and the
-    /// "compare with" position run, which halves the cost; others restart from rest when selected.
+    /// compare-with position run; others restart from rest when selected.
     pub run_all: bool,
-    /// Index of the position the compare key switches to.
-    pub compare_with: usize,
+}
+
+impl Controls {
+    /// The heard position as a parameter value.
+    pub fn heard_value(&self) -> usize {
+        if self.ab {
+            self.compare_with
+        } else {
+            self.position
+        }
+    }
 }
 
 impl Default for Controls {
+    /// The parameters' defaults (plugin/README.md).
     fn default() -> Self {
-        let q = Quality::X4;
         Controls {
-            gain: 0.8,
-            level: 0.5,
+            pots: Pots::default(),
             calibration: 1.0,
             trim_db: 0.0,
-            heard: 1,
-            specs: [
-                SlotSpec {
-                    pair: None,
-                    quality: q,
-                },
-                SlotSpec {
-                    pair: Some((20.0, 20.0)),
-                    quality: q,
-                },
-                SlotSpec {
-                    pair: Some((18.0, 5.6)),
-                    quality: q,
-                },
-                SlotSpec {
-                    pair: Some((15.0, 9.1)),
-                    quality: q,
-                },
-            ],
+            position: 1,
+            compare_with: 2,
+            ab: false,
+            candidate: Candidate {
+                positive: 15.0,
+                negative: 9.1,
+                family: FamilyChoice::OneWatt,
+            },
+            quality: Quality::X4,
             listen_clamp: false,
             level_match: false,
             run_all: true,
-            compare_with: 2,
         }
     }
 }
 
-/// The reference circuit with a single switch position holding `pair`.
-pub fn slot_circuit(pair: Option<(f64, f64)>, calibration: f64) -> Circuit {
-    let mut circuit = Circuit::reference();
-    circuit.input.volts_at_full_scale = calibration;
-    circuit.clamp.position = vec![SwitchPosition {
-        name: "compared".into(),
-        positive: pair.map(|p| ZenerSpec::volts(p.0)),
-        negative: pair.map(|p| ZenerSpec::volts(p.1)),
-    }];
-    circuit
+// ---------------------------------------------------------------------------------------------------------
+// What a slot runs
+
+/// What one compared slot runs.
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub enum Source {
+    /// Nothing: a slot past the running circuit's last position.
+    Idle,
+    /// Switch position `k` of the running circuit.
+    Position(usize),
+    Candidate(Candidate),
 }
 
-/// Models of one position, one per input channel, built off the audio thread.
-pub struct Built {
+/// One slot's models as asked for: the circuit (by id), what they run, and the quality.
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub struct SlotSpec {
+    pub circuit: u32,
+    pub source: Source,
+    pub quality: Quality,
+}
+
+/// What slot `slot` runs for the circuit `key` and `controls`.
+pub fn slot_spec(slot: usize, key: CircuitKey, controls: &Controls) -> SlotSpec {
+    let source = if slot == CANDIDATE {
+        Source::Candidate(controls.candidate)
+    } else if slot < key.positions {
+        Source::Position(slot)
+    } else {
+        Source::Idle
+    };
+    SlotSpec {
+        circuit: key.id,
+        source,
+        quality: controls.quality,
+    }
+}
+
+/// A candidate part: Vz with the knee data of the chosen family's row (interpolated between rows for a Vz the
+/// family does not have; see `parts::Family::sheet_for`).
+pub fn candidate_part(volts: f64, family: FamilyChoice) -> ZenerSpec {
+    let sheet = family.family().sheet_for(volts);
+    ZenerSpec {
+        volts,
+        izt: Some(sheet.izt),
+        zzt: Some(sheet.zzt),
+        izk: Some(sheet.izk),
+        zzk: Some(sheet.zzk),
+    }
+}
+
+/// The circuit one slot's models run: `circuit` with its switch reduced to the one position (a circuit
+/// position, or the candidate pair); None for an idle slot or a position the circuit does not have.
+pub fn slot_circuit(circuit: &Circuit, source: &Source) -> Option<Circuit> {
+    let position = match source {
+        Source::Idle => return None,
+        Source::Position(k) => circuit.clamp.position.get(*k)?.clone(),
+        Source::Candidate(c) => SwitchPosition {
+            name: "candidate".into(),
+            positive: Some(candidate_part(c.positive, c.family)),
+            negative: Some(candidate_part(c.negative, c.family)),
+        },
+    };
+    let mut c = circuit.clone();
+    c.clamp.position = vec![position];
+    Some(c)
+}
+
+/// What the editor shows about a slot's parts.
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub struct PartsInfo {
+    /// Vz (V); NaN for a missing part.
+    pub volts_positive: f64,
+    pub volts_negative: f64,
+    /// Where the pair conducts CLAMPED_CURRENT (V); NaN when it has no parts.
+    pub threshold_positive: f64,
+    pub threshold_negative: f64,
+    /// The family the rating is judged against.
+    pub family: FamilyChoice,
+    /// The parts carry their own knee data from the circuit file.
+    pub own_knee: bool,
+}
+
+// ---------------------------------------------------------------------------------------------------------
+// The model interface
+
+/// The models of one slot: one per input channel, built off the audio thread.
+pub struct Models {
     pub spec: SlotSpec,
     pub sample_rate: f64,
-    pub engines: Vec<Engine>,
+    engines: Vec<Engine>,
+    /// Clamp-node volts to listening-output units (the circuit's `[listen] volts_at_full_scale`).
+    clamp_scale: f64,
+    pub parts: PartsInfo,
+    /// A loudness meter for a slot that has none yet (a slot gets its meter with its first models, so slots
+    /// the running circuit does not use hold no 3 s buffer); dropped with the models otherwise.
+    meter: Option<Box<ShortTerm>>,
 }
 
-impl Built {
+/// One slot's meter window, over its channels.
+#[derive(Clone, Copy, Debug, Default, PartialEq)]
+pub struct MeterWindow {
+    pub clamp_peak_positive: f64,
+    pub clamp_peak_negative: f64,
+    pub share_clamped: f64,
+    pub zener_peak_current: f64,
+    pub positive_peak_watts: f64,
+    pub negative_peak_watts: f64,
+    pub positive_average_watts: f64,
+    pub negative_average_watts: f64,
+}
+
+impl Models {
+    /// `new` with a loudness meter for a slot that has none.
+    fn with_meter(mut self: Box<Self>) -> Result<Box<Models>, String> {
+        self.meter = Some(Box::new(ShortTerm::new(self.sample_rate)?));
+        Ok(self)
+    }
+
+    /// Build the models of `spec` on `circuit` (allocates: off the audio thread).
     pub fn new(
         spec: SlotSpec,
+        circuit: &Circuit,
         sample_rate: f64,
-        models: usize,
-        gain: f64,
-        level: f64,
+        channels: usize,
+        pots: &Pots,
         calibration: f64,
-    ) -> Result<Box<Built>, String> {
-        let circuit = slot_circuit(spec.pair, calibration.clamp(1e-3, 100.0));
+    ) -> Result<Box<Models>, String> {
+        let slot = slot_circuit(circuit, &spec.source)
+            .ok_or_else(|| format!("no model for {:?}", spec.source))?;
         let settings = Settings {
-            gain: gain.clamp(0.0, 1.0),
-            level: level.clamp(0.0, 1.0),
+            gain: pots.gain.clamp(0.0, 1.0),
+            level: pots.level.clamp(0.0, 1.0),
             position: 0,
-            ..Default::default()
+            treble: pots.treble.clamp(0.0, 1.0),
+            middle: pots.middle.clamp(0.0, 1.0),
+            bass: pots.bass.clamp(0.0, 1.0),
         };
-        let mut engine = Engine::new(&circuit, sample_rate, spec.quality, settings)
-            .map_err(|e| e.to_string())?;
+        let mut engine =
+            Engine::new(&slot, sample_rate, spec.quality, settings).map_err(|e| e.to_string())?;
+        if calibration.is_finite() && calibration > 0.0 {
+            engine.set_input_calibration(calibration);
+        }
         // The processor reads the listening output and the clamp node only: decimate just those two.
         engine.set_active_probes(&[Probe::Listen, Probe::Clamp]);
-        let mut engines = Vec::with_capacity(models);
-        for _ in 1..models {
+        let position = &slot.clamp.position[0];
+        let (threshold_positive, threshold_negative) = match engine.model().pair(0) {
+            Some(pair) if !pair.is_open() => pair.thresholds_at(CLAMPED_CURRENT),
+            _ => (f64::NAN, f64::NAN),
+        };
+        let parts = PartsInfo {
+            volts_positive: position.positive.map_or(f64::NAN, |z| z.volts),
+            volts_negative: position.negative.map_or(f64::NAN, |z| z.volts),
+            threshold_positive,
+            threshold_negative,
+            family: match spec.source {
+                Source::Candidate(c) => c.family,
+                _ => FamilyChoice::OneWatt,
+            },
+            own_knee: matches!(spec.source, Source::Position(_))
+                && [position.positive, position.negative]
+                    .iter()
+                    .flatten()
+                    .any(|z| z.izt.is_some()),
+        };
+        let mut engines = Vec::with_capacity(channels);
+        for _ in 1..channels.max(1) {
             engines.push(engine.clone());
         }
         engines.push(engine);
-        Ok(Box::new(Built {
+        Ok(Box::new(Models {
             spec,
             sample_rate,
             engines,
+            clamp_scale: 1.0 / slot.listen.volts_at_full_scale,
+            parts,
+            meter: None,
         }))
+    }
+
+    pub fn channels(&self) -> usize {
+        self.engines.len()
+    }
+
+    /// Latency in host samples (the oversampling filters).
+    pub fn latency(&self) -> u32 {
+        self.engines[0].latency() as u32
+    }
+
+    /// Turn the pots (the model glides them).
+    pub fn set_pots(&mut self, pots: &Pots) {
+        for e in self.engines.iter_mut() {
+            e.set_gain(pots.gain);
+            e.set_level(pots.level);
+            e.set_knob(Knob::Treble, pots.treble);
+            e.set_knob(Knob::Middle, pots.middle);
+            e.set_knob(Knob::Bass, pots.bass);
+        }
+    }
+
+    /// One sample of channel `channel`: (listening output, clamp-node volts). `clamp_mix` 0 listens at the
+    /// wiper, 1 at the clamp node (scaled like the listening output), in between crossfades.
+    #[inline]
+    pub fn process(
+        &mut self,
+        channel: usize,
+        x: f32,
+        calibration: f64,
+        clamp_mix: f64,
+    ) -> (f64, f64) {
+        let e = &mut self.engines[channel];
+        e.set_input_calibration(calibration);
+        let f = e.process_sample(x);
+        let listen = if clamp_mix == 0.0 {
+            f.listen
+        } else {
+            f.listen * (1.0 - clamp_mix) + f.clamp_volts * self.clamp_scale * clamp_mix
+        };
+        (listen, f.clamp_volts)
+    }
+
+    /// Back to the operating point with silent history.
+    pub fn reset(&mut self) {
+        for e in self.engines.iter_mut() {
+            e.reset();
+        }
+    }
+
+    /// The meters since the last call, over the channels (None when nothing was processed); starts a new
+    /// window.
+    pub fn take_meters(&mut self) -> Option<MeterWindow> {
+        let mut w = MeterWindow {
+            clamp_peak_positive: f64::NEG_INFINITY,
+            clamp_peak_negative: f64::INFINITY,
+            ..Default::default()
+        };
+        let (mut clamped, mut samples) = (0u64, 0u64);
+        for e in self.engines.iter_mut() {
+            let m = *e.meters();
+            if m.samples > 0 {
+                w.clamp_peak_positive = w.clamp_peak_positive.max(m.clamp_peak_positive);
+                w.clamp_peak_negative = w.clamp_peak_negative.min(m.clamp_peak_negative);
+                clamped += m.clamped_samples;
+                samples += m.samples;
+                w.zener_peak_current = w.zener_peak_current.max(m.zener_peak_current);
+                w.positive_peak_watts = w.positive_peak_watts.max(m.positive_part_peak_watts);
+                w.negative_peak_watts = w.negative_peak_watts.max(m.negative_part_peak_watts);
+                let (a, b) = m.average_watts();
+                w.positive_average_watts = w.positive_average_watts.max(a);
+                w.negative_average_watts = w.negative_average_watts.max(b);
+            }
+            e.reset_meters();
+        }
+        (samples > 0).then(|| MeterWindow {
+            share_clamped: clamped as f64 / samples as f64,
+            ..w
+        })
     }
 }
 
+// ---------------------------------------------------------------------------------------------------------
+// Hand-over between the audio thread and the worker
+
 /// Single-slot lock-free exchange of a boxed model set.
 pub struct Mailbox {
-    slot: AtomicPtr<Built>,
+    slot: AtomicPtr<Models>,
 }
 
 impl Default for Mailbox {
@@ -157,13 +405,13 @@ impl Default for Mailbox {
 
 impl Mailbox {
     /// Put `b` in, returning what was there (worker side; the caller frees it).
-    pub fn replace(&self, b: Box<Built>) -> Option<Box<Built>> {
+    pub fn replace(&self, b: Box<Models>) -> Option<Box<Models>> {
         let old = self.slot.swap(Box::into_raw(b), Ordering::AcqRel);
         // SAFETY: every non-null pointer in the slot came from Box::into_raw and is owned by the slot.
         (!old.is_null()).then(|| unsafe { Box::from_raw(old) })
     }
     /// Put `b` in only if the slot is empty (audio side: never frees).
-    pub fn offer(&self, b: Box<Built>) -> Result<(), Box<Built>> {
+    pub fn offer(&self, b: Box<Models>) -> Result<(), Box<Models>> {
         let raw = Box::into_raw(b);
         match self
             .slot
@@ -175,7 +423,7 @@ impl Mailbox {
         }
     }
     /// Take what is there.
-    pub fn take(&self) -> Option<Box<Built>> {
+    pub fn take(&self) -> Option<Box<Models>> {
         let old = self.slot.swap(ptr::null_mut(), Ordering::AcqRel);
         // SAFETY: as in `replace`.
         (!old.is_null()).then(|| unsafe { Box::from_raw(old) })
@@ -188,54 +436,86 @@ impl Drop for Mailbox {
     }
 }
 
-/// The spec a position should run, as the audio thread last asked for it.
+/// The spec a slot should run, as the audio thread last asked for it (atomics only).
 #[derive(Default)]
 struct Request {
+    /// 0 idle, 1 a circuit position, 2 the candidate.
+    kind: AtomicUsize,
+    index: AtomicUsize,
     positive: AtomicF64,
     negative: AtomicF64,
+    family: AtomicUsize,
     factor: AtomicUsize,
+    circuit: AtomicU32,
     generation: AtomicU32,
 }
 
-/// Builds models off the audio thread.
+/// Builds models off the audio thread, for the session's running circuit.
 pub struct Worker {
+    session: Arc<Session>,
     requests: [Request; SLOTS],
     pub incoming: [Mailbox; SLOTS],
     pub returns: [Mailbox; SLOTS],
     sample_rate: AtomicF64,
-    models: AtomicUsize,
-    gain: AtomicF64,
-    level: AtomicF64,
+    channels: AtomicUsize,
+    pots: [AtomicF64; 5],
     calibration: AtomicF64,
+    /// The slot has its loudness meter (set by the audio thread); the worker adds one to a slot's models
+    /// until it has.
+    metered: [AtomicBool; SLOTS],
     built_generation: Mutex<[u32; SLOTS]>,
 }
 
 impl Default for Worker {
     fn default() -> Self {
-        Worker {
-            requests: Default::default(),
-            incoming: Default::default(),
-            returns: Default::default(),
-            sample_rate: AtomicF64::new(48_000.0),
-            models: AtomicUsize::new(1),
-            gain: AtomicF64::new(0.8),
-            level: AtomicF64::new(0.5),
-            calibration: AtomicF64::new(1.0),
-            built_generation: Mutex::new([0; SLOTS]),
-        }
+        Worker::new(Arc::new(Session::default()))
     }
 }
 
 impl Worker {
-    /// Ask for `spec` at position `slot` (audio thread: atomics only).
+    pub fn new(session: Arc<Session>) -> Worker {
+        let pots = Pots::default();
+        Worker {
+            session,
+            requests: Default::default(),
+            incoming: Default::default(),
+            returns: Default::default(),
+            sample_rate: AtomicF64::new(48_000.0),
+            channels: AtomicUsize::new(1),
+            pots: [pots.gain, pots.level, pots.treble, pots.middle, pots.bass].map(AtomicF64::new),
+            calibration: AtomicF64::new(1.0),
+            metered: Default::default(),
+            built_generation: Mutex::new([0; SLOTS]),
+        }
+    }
+
+    pub fn session(&self) -> &Arc<Session> {
+        &self.session
+    }
+
+    /// Ask for `spec` at `slot` (audio thread: atomics only).
     fn request(&self, slot: usize, spec: SlotSpec, controls: &Controls) {
         let r = &self.requests[slot];
-        let (p, n) = spec.pair.unwrap_or((f64::NAN, f64::NAN));
+        let (kind, index, p, n, family) = match spec.source {
+            Source::Idle => (0, 0, 0.0, 0.0, 0),
+            Source::Position(k) => (1, k, 0.0, 0.0, 0),
+            Source::Candidate(c) => (2, 0, c.positive, c.negative, c.family as usize),
+        };
+        r.kind.store(kind, Ordering::Relaxed);
+        r.index.store(index, Ordering::Relaxed);
         r.positive.store(p, Ordering::Relaxed);
         r.negative.store(n, Ordering::Relaxed);
+        r.family.store(family, Ordering::Relaxed);
         r.factor.store(spec.quality.factor(), Ordering::Relaxed);
-        self.gain.store(controls.gain, Ordering::Relaxed);
-        self.level.store(controls.level, Ordering::Relaxed);
+        r.circuit.store(spec.circuit, Ordering::Relaxed);
+        let p = &controls.pots;
+        for (a, v) in self
+            .pots
+            .iter()
+            .zip([p.gain, p.level, p.treble, p.middle, p.bass])
+        {
+            a.store(v, Ordering::Relaxed);
+        }
         self.calibration
             .store(controls.calibration, Ordering::Relaxed);
         r.generation.fetch_add(1, Ordering::Release);
@@ -243,18 +523,42 @@ impl Worker {
 
     fn requested(&self, slot: usize) -> SlotSpec {
         let r = &self.requests[slot];
-        let (p, n) = (
-            r.positive.load(Ordering::Relaxed),
-            r.negative.load(Ordering::Relaxed),
-        );
+        let source = match r.kind.load(Ordering::Relaxed) {
+            1 => Source::Position(r.index.load(Ordering::Relaxed)),
+            2 => Source::Candidate(Candidate {
+                positive: r.positive.load(Ordering::Relaxed),
+                negative: r.negative.load(Ordering::Relaxed),
+                family: if r.family.load(Ordering::Relaxed) == FamilyChoice::HalfWatt as usize {
+                    FamilyChoice::HalfWatt
+                } else {
+                    FamilyChoice::OneWatt
+                },
+            }),
+            _ => Source::Idle,
+        };
         SlotSpec {
-            pair: (p.is_finite() && n.is_finite()).then_some((p, n)),
+            circuit: r.circuit.load(Ordering::Relaxed),
+            source,
             quality: Quality::from_factor(r.factor.load(Ordering::Relaxed)).unwrap_or_default(),
         }
     }
 
-    /// Build whatever was asked for and free what came back (background thread).
+    fn pots(&self) -> Pots {
+        let [gain, level, treble, middle, bass] =
+            self.pots.each_ref().map(|a| a.load(Ordering::Relaxed));
+        Pots {
+            gain,
+            level,
+            treble,
+            middle,
+            bass,
+        }
+    }
+
+    /// Bring the session's circuit up to date, build whatever was asked for and free what came back
+    /// (background thread).
     pub fn service(&self) {
+        self.session.refresh();
         let Ok(mut built) = self.built_generation.lock() else {
             return;
         };
@@ -271,14 +575,27 @@ impl Worker {
                 built[slot] = generation;
                 worked = true;
                 let spec = self.requested(slot);
-                match Built::new(
+                let (id, circuit) = self.session.circuit();
+                if spec.source == Source::Idle || spec.circuit != id {
+                    // Asked for a circuit that is no longer running: the audio thread asks again for the
+                    // running one as soon as it sees it.
+                    continue;
+                }
+                match Models::new(
                     spec,
+                    &circuit,
                     self.sample_rate.load(Ordering::Relaxed),
-                    self.models.load(Ordering::Relaxed),
-                    self.gain.load(Ordering::Relaxed),
-                    self.level.load(Ordering::Relaxed),
+                    self.channels.load(Ordering::Relaxed),
+                    &self.pots(),
                     self.calibration.load(Ordering::Relaxed),
-                ) {
+                )
+                .and_then(|b| {
+                    if self.metered[slot].load(Ordering::Acquire) {
+                        Ok(b)
+                    } else {
+                        b.with_meter()
+                    }
+                }) {
                     Ok(b) => drop(self.incoming[slot].replace(b)),
                     Err(e) => nice_plug::nice_warn!("Breakdown: could not build a model: {e}"),
                 }
@@ -290,9 +607,9 @@ impl Worker {
     }
 
     /// Forget pending requests and set the rate and channel count for new builds (activation, not real-time).
-    fn restart(&self, sample_rate: f64, models: usize) {
+    fn restart(&self, sample_rate: f64, channels: usize) {
         self.sample_rate.store(sample_rate, Ordering::Relaxed);
-        self.models.store(models, Ordering::Relaxed);
+        self.channels.store(channels, Ordering::Relaxed);
         let mut built = self
             .built_generation
             .lock()
@@ -301,9 +618,13 @@ impl Worker {
             built[slot] = self.requests[slot].generation.load(Ordering::Acquire);
             drop(self.incoming[slot].take());
             drop(self.returns[slot].take());
+            self.metered[slot].store(false, Ordering::Release);
         }
     }
 }
+
+// ---------------------------------------------------------------------------------------------------------
+// The processor
 
 /// Raised-cosine crossfade weight for fade position `t` in 0..=1.
 #[inline]
@@ -311,27 +632,30 @@ fn fade_weight(t: f64) -> f64 {
     0.5 - 0.5 * (std::f64::consts::PI * t.clamp(0.0, 1.0)).cos()
 }
 
-/// One compared position at run time.
+/// One compared slot at run time.
 struct Slot {
-    current: Box<Built>,
-    next: Option<Box<Built>>,
+    current: Option<Box<Models>>,
+    /// A rebuilt set fading in over `current` (from silence when there is no current).
+    next: Option<Box<Models>>,
     fade: usize,
     wanted: SlotSpec,
-    bin: [Option<Box<Built>>; BIN],
-    loudness: ShortTerm,
-    match_gain: f64,
-    match_target: f64,
-    /// Per model: (listening value, clamp volts) of the last sample.
+    bin: [Option<Box<Models>>; BIN],
+    /// None until the slot's first models brought one.
+    loudness: Option<Box<ShortTerm>>,
+    match_gain: Glide,
+    /// Per channel: (listening value, clamp volts) of the last sample.
     out: [(f64, f64); 2],
     /// Running this block.
     active: bool,
+    /// The parts shown changed (publish after the block).
+    changed: bool,
 }
 
 impl Slot {
     fn bin_room(&self) -> usize {
         self.bin.iter().filter(|b| b.is_none()).count()
     }
-    fn retire(&mut self, b: Box<Built>) {
+    fn retire(&mut self, b: Box<Models>) {
         if let Some(place) = self.bin.iter_mut().find(|b| b.is_none()) {
             *place = Some(b);
         } else {
@@ -351,32 +675,60 @@ impl Slot {
         }
         false
     }
+    fn models_mut(&mut self) -> impl Iterator<Item = &mut Models> {
+        self.current
+            .iter_mut()
+            .chain(self.next.iter_mut())
+            .map(|b| b.as_mut())
+    }
+    fn has_models(&self) -> bool {
+        self.current.is_some() || self.next.is_some()
+    }
+    /// Restart from rest: silent history, a new loudness window.
+    fn restart(&mut self) {
+        for m in self.models_mut() {
+            m.reset();
+        }
+        if let Some(l) = self.loudness.as_mut() {
+            l.reset();
+        }
+        self.out = [(0.0, 0.0); 2];
+    }
 }
 
 /// What the plugin wrapper must do after a block.
 #[derive(Clone, Copy, Debug, Default, PartialEq)]
 pub struct BlockActions {
-    /// Wake the background worker (models to build or to free).
+    /// Wake the background worker (a circuit to read, models to build or to free).
     pub service_worker: bool,
     /// New latency to report to the host.
     pub latency: Option<u32>,
 }
 
+/// Per-block targets of the glides.
+#[derive(Clone, Copy)]
+struct Targets {
+    listen: f64,
+}
+
 /// The real-time processor for one activation (sample rate, channel layout).
 pub struct Processor {
     sample_rate: f64,
-    models: usize,
-    slots: [Slot; SLOTS],
+    channels: usize,
+    slots: Box<[Slot; SLOTS]>,
+    /// The running circuit the slots follow.
+    key: CircuitKey,
+    seen_revision: u32,
     heard: usize,
     previous: usize,
     heard_fade: usize,
     fade_len: usize,
     listen_mix: f64,
     listen_step: f64,
-    calibration: f64,
-    trim: f64,
-    control_coeff: f64,
-    match_coeff: f64,
+    calibration: Glide,
+    trim: Glide,
+    tone: [Glide; 3],
+    level_match: bool,
     latency: u32,
     meter_countdown: usize,
     /// Set by `reset`: the first block starts at rest at its own control values (hosts often deliver the
@@ -387,73 +739,92 @@ pub struct Processor {
 }
 
 impl Processor {
-    /// Build every model for `controls` (allocates: call from activation, not from the audio thread).
+    /// Build every slot's models for `controls` on the session's circuit (allocates: call from activation,
+    /// not from the audio thread).
     pub fn new(
         sample_rate: f64,
-        models: usize,
+        channels: usize,
         controls: &Controls,
         worker: Arc<Worker>,
         shared: Arc<Shared>,
     ) -> Result<Processor, String> {
-        let models = models.clamp(1, 2);
-        worker.restart(sample_rate, models);
+        let channels = channels.clamp(1, 2);
+        worker.restart(sample_rate, channels);
+        let session = worker.session().clone();
+        session.refresh();
+        let (id, circuit) = session.circuit();
+        let key = CircuitKey {
+            id,
+            positions: circuit.clamp.position.len(),
+        };
         let mut slots = Vec::with_capacity(SLOTS);
-        for spec in controls.specs {
-            let built = Built::new(
-                spec,
-                sample_rate,
-                models,
-                controls.gain,
-                controls.level,
-                controls.calibration,
-            )?;
+        for s in 0..SLOTS {
+            let spec = slot_spec(s, key, controls);
+            let mut current = match spec.source {
+                Source::Idle => None,
+                _ => Some(
+                    Models::new(
+                        spec,
+                        &circuit,
+                        sample_rate,
+                        channels,
+                        &controls.pots,
+                        controls.calibration,
+                    )?
+                    .with_meter()?,
+                ),
+            };
+            let loudness = current.as_mut().and_then(|m| m.meter.take());
+            worker.metered[s].store(loudness.is_some(), Ordering::Release);
             slots.push(Slot {
-                current: built,
+                current,
                 next: None,
                 fade: 0,
                 wanted: spec,
                 bin: Default::default(),
-                loudness: ShortTerm::new(sample_rate),
-                match_gain: 1.0,
-                match_target: 1.0,
+                loudness,
+                match_gain: Glide::new(1.0, MATCH_GLIDE_SECONDS, sample_rate),
                 out: [(0.0, 0.0); 2],
                 active: true,
+                changed: true,
             });
         }
-        let slots: [Slot; SLOTS] = match slots.try_into() {
+        let slots: Box<[Slot; SLOTS]> = match slots.into_boxed_slice().try_into() {
             Ok(s) => s,
-            Err(_) => return Err("internal: wrong number of positions".into()),
+            Err(_) => return Err("internal: wrong number of slots".into()),
         };
         let fade_len = ((FADE_SECONDS * sample_rate).round() as usize).max(1);
-        let heard = controls.heard.min(SLOTS - 1);
-        let latency = slots[0].current.engines[0].latency() as u32;
-        let p = Processor {
+        let heard = key.slot_of(controls.heard_value());
+        let latency = slots
+            .iter()
+            .find_map(|s| s.current.as_ref().map(|m| m.latency()))
+            .unwrap_or(0);
+        let glide = |v: f64| Glide::new(v, CONTROL_GLIDE_SECONDS, sample_rate);
+        let p = &controls.pots;
+        let mut processor = Processor {
             sample_rate,
-            models,
+            channels,
             slots,
+            key,
+            seen_revision: session.revision(),
             heard,
             previous: heard,
             heard_fade: fade_len,
             fade_len,
             listen_mix: if controls.listen_clamp { 1.0 } else { 0.0 },
             listen_step: 1.0 / fade_len as f64,
-            calibration: controls.calibration,
-            trim: db_to_gain(controls.trim_db),
-            control_coeff: 1.0 - (-1.0 / (CONTROL_GLIDE_SECONDS * sample_rate)).exp(),
-            match_coeff: 1.0 - (-1.0 / (MATCH_GLIDE_SECONDS * sample_rate)).exp(),
+            calibration: glide(controls.calibration),
+            trim: glide(db_to_gain(controls.trim_db)),
+            tone: [glide(p.treble), glide(p.middle), glide(p.bass)],
+            level_match: controls.level_match,
             latency,
             meter_countdown: 0,
             fresh: true,
             worker,
             shared,
         };
-        p.shared.sample_rate.store(sample_rate, Ordering::Relaxed);
-        p.shared.latency.store(latency, Ordering::Relaxed);
-        p.shared.models.store(models, Ordering::Relaxed);
-        for s in 0..SLOTS {
-            p.publish_pair(s);
-        }
-        Ok(p)
+        processor.publish_static();
+        Ok(processor)
     }
 
     /// Latency in samples (the oversampling filters of the models heard).
@@ -461,91 +832,39 @@ impl Processor {
         self.latency
     }
 
-    pub fn models(&self) -> usize {
-        self.models
+    /// Models per slot (one per input channel).
+    pub fn channels(&self) -> usize {
+        self.channels
     }
 
     pub fn sample_rate(&self) -> f64 {
         self.sample_rate
     }
 
+    /// The runtime slot heard (a position index or CANDIDATE).
+    pub fn heard(&self) -> usize {
+        self.heard
+    }
+
     /// Back to the operating point of `controls` with silent history, no glides pending (real-time safe).
     pub fn reset(&mut self, controls: &Controls) {
         for slot in self.slots.iter_mut() {
-            let engines = slot
-                .current
-                .engines
-                .iter_mut()
-                .chain(slot.next.iter_mut().flat_map(|n| n.engines.iter_mut()));
-            for e in engines {
-                e.set_gain(controls.gain);
-                e.set_level(controls.level);
-                e.reset();
+            for m in slot.models_mut() {
+                m.set_pots(&controls.pots);
             }
-            slot.loudness.reset();
-            slot.out = [(0.0, 0.0); 2];
+            slot.restart();
         }
-        self.heard = controls.heard.min(SLOTS - 1);
+        self.heard = self.key.slot_of(controls.heard_value());
         self.previous = self.heard;
         self.heard_fade = self.fade_len;
         self.listen_mix = if controls.listen_clamp { 1.0 } else { 0.0 };
-        if controls.calibration.is_finite() && controls.calibration > 0.0 {
-            self.calibration = controls.calibration;
+        self.calibration.jump(controls.calibration);
+        self.trim.jump(db_to_gain(controls.trim_db));
+        let p = &controls.pots;
+        for (g, v) in self.tone.iter_mut().zip([p.treble, p.middle, p.bass]) {
+            g.jump(v);
         }
-        self.trim = db_to_gain(controls.trim_db);
         self.fresh = true;
-    }
-
-    fn publish_pair(&self, slot: usize) {
-        let r = &self.shared.slots[slot];
-        let built = &self.slots[slot].current;
-        let (tp, tn) = match built.engines[0].stage().pair(0) {
-            Some(pair) if !pair.is_open() => {
-                let (p, n) = pair.thresholds_at(CLAMPED_CURRENT);
-                (p as f32, n as f32)
-            }
-            _ => (f32::NAN, f32::NAN),
-        };
-        r.threshold_positive.store(tp, Ordering::Relaxed);
-        r.threshold_negative.store(tn, Ordering::Relaxed);
-        let (vp, vn) = built.spec.pair.unwrap_or((f64::NAN, f64::NAN));
-        r.volts_positive.store(vp as f32, Ordering::Relaxed);
-        r.volts_negative.store(vn as f32, Ordering::Relaxed);
-    }
-
-    /// Pick up rebuilt models, ask for new ones, hand back retired ones.
-    fn exchange(&mut self, controls: &Controls, actions: &mut BlockActions) {
-        for s in 0..SLOTS {
-            let want = controls.specs[s];
-            let slot = &mut self.slots[s];
-            if want != slot.wanted {
-                slot.wanted = want;
-                self.worker.request(s, want, controls);
-                actions.service_worker = true;
-            }
-            if slot.bin_room() >= 2 {
-                if let Some(b) = self.worker.incoming[s].take() {
-                    let fits = b.spec == slot.wanted
-                        && b.sample_rate == self.sample_rate
-                        && b.engines.len() == self.models;
-                    if !fits {
-                        slot.retire(b);
-                    } else {
-                        if let Some(old_next) = slot.next.take() {
-                            slot.retire(old_next);
-                        }
-                        slot.next = Some(b);
-                        slot.fade = 0;
-                    }
-                }
-            }
-            let waiting = slot.flush_bin(&self.worker.returns[s]);
-            actions.service_worker |= waiting;
-            let rebuilding = slot.current.spec != slot.wanted;
-            self.shared.slots[s]
-                .rebuilding
-                .store(rebuilding, Ordering::Relaxed);
-        }
     }
 
     /// Process one block in place. `channels[..models]` hold the input; every channel receives the output (a
@@ -556,175 +875,267 @@ impl Processor {
             self.reset(controls);
             self.fresh = false;
         }
+        self.follow_session(&mut actions);
         self.exchange(controls, &mut actions);
-        if channels.is_empty() {
+        let frames = channels.iter().map(|c| c.len()).min().unwrap_or(0);
+        if frames == 0 {
             return actions;
         }
-        let frames = channels.iter().map(|c| c.len()).min().unwrap_or(0);
-        let models = self.models.min(channels.len());
+        self.follow_switch(controls);
+        self.choose_running(controls);
+        let targets = self.set_targets(controls);
+        let _guard = breakdown_dsp::denormals::FlushGuard::new();
+        for n in 0..frames {
+            let inputs = self.read_frame(channels, n);
+            let clamp_mix = self.step_glides(targets);
+            self.run_slots(&inputs, clamp_mix, &mut actions);
+            let y = self.mix_heard();
+            self.write_frame(channels, n, y);
+        }
+        self.finish_block(frames, &mut actions);
+        actions
+    }
 
-        let heard = controls.heard.min(SLOTS - 1);
+    /// Notice a changed session (wake the worker to read it) and follow the running circuit.
+    fn follow_session(&mut self, actions: &mut BlockActions) {
+        let session = self.worker.session();
+        let revision = session.revision();
+        if revision != self.seen_revision {
+            self.seen_revision = revision;
+            actions.service_worker = true;
+        }
+        self.key = session.key();
+    }
+
+    /// Pick up rebuilt models, ask for new ones, hand back retired ones.
+    fn exchange(&mut self, controls: &Controls, actions: &mut BlockActions) {
+        for s in 0..SLOTS {
+            let want = slot_spec(s, self.key, controls);
+            let slot = &mut self.slots[s];
+            if want != slot.wanted {
+                slot.wanted = want;
+                if want.source != Source::Idle {
+                    self.worker.request(s, want, controls);
+                    actions.service_worker = true;
+                }
+            }
+            if slot.bin_room() >= 2 {
+                if let Some(b) = self.worker.incoming[s].take() {
+                    let fits = b.spec == slot.wanted
+                        && b.sample_rate == self.sample_rate
+                        && b.channels() == self.channels;
+                    if !fits {
+                        slot.retire(b);
+                    } else {
+                        if let Some(old_next) = slot.next.take() {
+                            slot.retire(old_next);
+                        }
+                        let mut b = b;
+                        if slot.loudness.is_none() {
+                            slot.loudness = b.meter.take();
+                            self.worker.metered[s]
+                                .store(slot.loudness.is_some(), Ordering::Release);
+                        }
+                        slot.next = Some(b);
+                        slot.fade = 0;
+                    }
+                }
+            }
+            // A slot the running circuit no longer has: free its models once nothing plays them.
+            if slot.wanted.source == Source::Idle && !slot.active && slot.bin_room() >= 2 {
+                if let Some(b) = slot.current.take() {
+                    slot.retire(b);
+                    slot.changed = true;
+                }
+                if let Some(b) = slot.next.take() {
+                    slot.retire(b);
+                }
+            }
+            actions.service_worker |= slot.flush_bin(&self.worker.returns[s]);
+            let rebuilding = slot.wanted.source != Source::Idle
+                && slot.current.as_ref().map(|m| m.spec) != Some(slot.wanted);
+            self.shared.slots[s]
+                .rebuilding
+                .store(rebuilding, Ordering::Relaxed);
+        }
+    }
+
+    /// A new heard slot starts a crossfade from the one heard before.
+    fn follow_switch(&mut self, controls: &Controls) {
+        let heard = self.key.slot_of(controls.heard_value());
         if heard != self.heard {
             self.previous = self.heard;
             self.heard = heard;
             self.heard_fade = 0;
         }
-        let fading_from = (self.heard_fade < self.fade_len).then_some(self.previous);
-        for (s, slot) in self.slots.iter_mut().enumerate() {
-            let active = controls.run_all
-                || s == self.heard
-                || Some(s) == fading_from
-                || s == controls.compare_with;
-            if active && !slot.active {
-                // Restart from rest: its history is stale.
-                for e in slot.current.engines.iter_mut() {
-                    e.reset();
-                }
-                if let Some(next) = slot.next.as_mut() {
-                    for e in next.engines.iter_mut() {
-                        e.reset();
-                    }
-                }
-                slot.loudness.reset();
-                slot.out = [(0.0, 0.0); 2];
-            }
-            slot.active = active;
-            for e in slot.current.engines.iter_mut() {
-                e.set_gain(controls.gain);
-                e.set_level(controls.level);
-            }
-            if let Some(next) = slot.next.as_mut() {
-                for e in next.engines.iter_mut() {
-                    e.set_gain(controls.gain);
-                    e.set_level(controls.level);
-                }
-            }
-        }
-        let listen_target = if controls.listen_clamp { 1.0 } else { 0.0 };
-        let calibration_target = if controls.calibration.is_finite() && controls.calibration > 0.0 {
-            controls.calibration
-        } else {
-            1.0
-        };
-        let trim_target = db_to_gain(controls.trim_db);
-        let listen_volts = 1.0 / breakdown_dsp::circuit::Listen::default().volts_at_full_scale;
-
-        let mut swapped = [false; SLOTS];
-        let _guard = breakdown_dsp::denormals::FlushGuard::new();
-        for n in 0..frames {
-            self.calibration += (calibration_target - self.calibration) * self.control_coeff;
-            self.trim += (trim_target - self.trim) * self.control_coeff;
-            if self.listen_mix != listen_target {
-                self.listen_mix = if self.listen_mix < listen_target {
-                    (self.listen_mix + self.listen_step).min(listen_target)
-                } else {
-                    (self.listen_mix - self.listen_step).max(listen_target)
-                };
-            }
-            let mix = fade_weight(self.listen_mix);
-            let mut inputs = [0.0f32; 2];
-            for (c, x) in inputs.iter_mut().enumerate().take(models) {
-                *x = channels[c][n];
-            }
-            let mut new_block = false;
-            for (s, slot) in self.slots.iter_mut().enumerate() {
-                if !slot.active {
-                    continue;
-                }
-                let fading = slot.next.is_some();
-                let w = if fading {
-                    fade_weight(slot.fade as f64 / self.fade_len as f64)
-                } else {
-                    0.0
-                };
-                for (c, &x) in inputs.iter().enumerate().take(models) {
-                    let e = &mut slot.current.engines[c];
-                    e.set_input_calibration(self.calibration);
-                    let f = e.process_sample(x);
-                    let mut listen = f.listen * (1.0 - mix) + f.clamp_volts * listen_volts * mix;
-                    let mut clamp = f.clamp_volts;
-                    if let Some(next) = slot.next.as_mut() {
-                        let e = &mut next.engines[c];
-                        e.set_input_calibration(self.calibration);
-                        let g = e.process_sample(x);
-                        let l2 = g.listen * (1.0 - mix) + g.clamp_volts * listen_volts * mix;
-                        listen += (l2 - listen) * w;
-                        clamp += (g.clamp_volts - clamp) * w;
-                    }
-                    slot.out[c] = (listen, clamp);
-                }
-                if fading {
-                    slot.fade += 1;
-                    if slot.fade >= self.fade_len {
-                        if let Some(next) = slot.next.take() {
-                            let old = std::mem::replace(&mut slot.current, next);
-                            slot.retire(old);
-                        }
-                        slot.fade = 0;
-                        let latency = slot.current.engines[0].latency() as u32;
-                        if s == self.heard && latency != self.latency {
-                            self.latency = latency;
-                            actions.latency = Some(latency);
-                        }
-                        actions.service_worker = true;
-                        swapped[s] = true;
-                    }
-                }
-                new_block |= slot.loudness.push(slot.out[0].0);
-                slot.match_gain += (slot.match_target - slot.match_gain) * self.match_coeff;
-            }
-            if new_block {
-                self.update_match(controls.level_match);
-            }
-            let w = if self.heard_fade < self.fade_len {
-                self.heard_fade += 1;
-                fade_weight(self.heard_fade as f64 / self.fade_len as f64)
-            } else {
-                self.previous = self.heard;
-                1.0
-            };
-            let (a, b) = (&self.slots[self.heard], &self.slots[self.previous]);
-            let mut y = [0.0f64; 2];
-            for (c, yc) in y.iter_mut().enumerate().take(models) {
-                let ya = a.out[c].0 * a.match_gain;
-                *yc = if self.previous == self.heard {
-                    ya * self.trim
-                } else {
-                    let yb = b.out[c].0 * b.match_gain;
-                    (yb + (ya - yb) * w) * self.trim
-                };
-            }
-            self.shared.scope.push(a.out[0].1 as f32);
-            self.shared.listen.push(a.out[0].0 as f32);
-            for (c, ch) in channels.iter_mut().enumerate() {
-                let v = y[c.min(models - 1)];
-                ch[n] = if v.is_finite() { v as f32 } else { 0.0 };
-            }
-        }
-        for (s, done) in swapped.iter().enumerate() {
-            if *done {
-                self.publish_pair(s);
-                self.shared.latency.store(self.latency, Ordering::Relaxed);
-            }
-        }
-        self.publish_meters(frames);
-        self.shared.heard.store(self.heard, Ordering::Relaxed);
-        actions
     }
 
-    fn update_match(&mut self, enabled: bool) {
-        let loudness: [f64; SLOTS] = std::array::from_fn(|s| {
-            if self.slots[s].active {
-                self.slots[s].loudness.lufs()
-            } else {
-                f64::NEG_INFINITY
+    /// Which slots run this block: all with run-all, else the heard, the compare-with and the one fading out.
+    /// A slot that starts running again restarts from rest (its history is stale).
+    fn choose_running(&mut self, controls: &Controls) {
+        let fading_from = (self.heard_fade < self.fade_len).then_some(self.previous);
+        let compare = self.key.slot_of(controls.compare_with);
+        for (s, slot) in self.slots.iter_mut().enumerate() {
+            let wanted = slot.wanted.source != Source::Idle
+                && (controls.run_all || s == self.heard || s == compare);
+            let active = slot.has_models() && (wanted || Some(s) == fading_from);
+            if active && !slot.active {
+                slot.restart();
             }
-        });
-        for (s, l) in loudness.iter().enumerate() {
-            if self.slots[s].active {
+            slot.active = active;
+        }
+    }
+
+    /// Hand the pots to the running models and set the glides' targets for the block.
+    fn set_targets(&mut self, controls: &Controls) -> Targets {
+        let p = &controls.pots;
+        for (g, v) in self.tone.iter_mut().zip([p.treble, p.middle, p.bass]) {
+            g.set_target(v);
+        }
+        let pots = Pots {
+            treble: self.tone[0].value(),
+            middle: self.tone[1].value(),
+            bass: self.tone[2].value(),
+            ..*p
+        };
+        for slot in self.slots.iter_mut().filter(|s| s.active) {
+            for m in slot.models_mut() {
+                m.set_pots(&pots);
+            }
+        }
+        if controls.calibration.is_finite() && controls.calibration > 0.0 {
+            self.calibration.set_target(controls.calibration);
+        }
+        self.trim.set_target(db_to_gain(controls.trim_db));
+        self.level_match = controls.level_match;
+        Targets {
+            listen: if controls.listen_clamp { 1.0 } else { 0.0 },
+        }
+    }
+
+    fn read_frame(&self, channels: &[&mut [f32]], n: usize) -> [f32; 2] {
+        let mut inputs = [0.0f32; 2];
+        for (c, x) in inputs
+            .iter_mut()
+            .enumerate()
+            .take(self.channels.min(channels.len()))
+        {
+            *x = channels[c][n];
+        }
+        inputs
+    }
+
+    /// One step of every glide; returns the listening point's crossfade weight (0 wiper, 1 clamp node).
+    fn step_glides(&mut self, targets: Targets) -> f64 {
+        self.calibration.step();
+        self.trim.step();
+        for g in self.tone.iter_mut() {
+            g.step();
+        }
+        if self.listen_mix != targets.listen {
+            self.listen_mix = if self.listen_mix < targets.listen {
+                (self.listen_mix + self.listen_step).min(targets.listen)
+            } else {
+                (self.listen_mix - self.listen_step).max(targets.listen)
+            };
+        }
+        fade_weight(self.listen_mix)
+    }
+
+    /// One sample through every running slot (with the fade-in of rebuilt models), its loudness and match gain.
+    fn run_slots(&mut self, inputs: &[f32; 2], clamp_mix: f64, actions: &mut BlockActions) {
+        let calibration = self.calibration.value();
+        let mut new_window = false;
+        for s in 0..SLOTS {
+            let slot = &mut self.slots[s];
+            if !slot.active {
+                continue;
+            }
+            let w = if slot.next.is_some() {
+                fade_weight(slot.fade as f64 / self.fade_len as f64)
+            } else {
+                0.0
+            };
+            for (c, &x) in inputs.iter().enumerate().take(self.channels) {
+                let (mut listen, mut clamp) = match slot.current.as_mut() {
+                    Some(m) => m.process(c, x, calibration, clamp_mix),
+                    None => (0.0, 0.0),
+                };
+                if let Some(next) = slot.next.as_mut() {
+                    let (l2, c2) = next.process(c, x, calibration, clamp_mix);
+                    listen += (l2 - listen) * w;
+                    clamp += (c2 - clamp) * w;
+                }
+                slot.out[c] = (listen, clamp);
+            }
+            if slot.next.is_some() {
+                slot.fade += 1;
+                if slot.fade >= self.fade_len {
+                    if let Some(old) = std::mem::replace(&mut slot.current, slot.next.take()) {
+                        slot.retire(old);
+                    }
+                    slot.fade = 0;
+                    slot.changed = true;
+                    actions.service_worker = true;
+                }
+            }
+            if let Some(l) = slot.loudness.as_mut() {
+                new_window |= l.push(slot.out[0].0);
+            }
+            slot.match_gain.step();
+        }
+        if new_window {
+            self.update_match();
+        }
+    }
+
+    /// The heard slot's output (crossfaded from the previous one while the switch moves), level-matched and
+    /// trimmed, per channel; also feeds the editor's scope.
+    fn mix_heard(&mut self) -> [f64; 2] {
+        let w = if self.heard_fade < self.fade_len {
+            self.heard_fade += 1;
+            fade_weight(self.heard_fade as f64 / self.fade_len as f64)
+        } else {
+            self.previous = self.heard;
+            1.0
+        };
+        let (a, b) = (&self.slots[self.heard], &self.slots[self.previous]);
+        let trim = self.trim.value();
+        let mut y = [0.0f64; 2];
+        for (c, yc) in y.iter_mut().enumerate().take(self.channels) {
+            let ya = a.out[c].0 * a.match_gain.value();
+            *yc = if self.previous == self.heard {
+                ya * trim
+            } else {
+                let yb = b.out[c].0 * b.match_gain.value();
+                (yb + (ya - yb) * w) * trim
+            };
+        }
+        self.shared.scope.push(a.out[0].1 as f32);
+        self.shared.listen.push(a.out[0].0 as f32);
+        y
+    }
+
+    fn write_frame(&self, channels: &mut [&mut [f32]], n: usize, y: [f64; 2]) {
+        for (c, ch) in channels.iter_mut().enumerate() {
+            let v = y[c.min(self.channels - 1)];
+            ch[n] = if v.is_finite() { v as f32 } else { 0.0 };
+        }
+    }
+
+    /// New loudness readings: publish them and steer every slot's match gain toward the quietest.
+    fn update_match(&mut self) {
+        let level_match = self.level_match;
+        let mut loudness = [f64::NEG_INFINITY; SLOTS];
+        for (s, slot) in self.slots.iter().enumerate() {
+            if slot.active {
+                loudness[s] = slot
+                    .loudness
+                    .as_ref()
+                    .map_or(f64::NEG_INFINITY, |l| l.lufs());
                 self.shared.slots[s]
                     .loudness
-                    .store(*l as f32, Ordering::Relaxed);
+                    .store(loudness[s] as f32, Ordering::Relaxed);
             }
         }
         let reference = loudness
@@ -733,74 +1144,101 @@ impl Processor {
             .filter(|l| *l > MATCH_GATE_LUFS)
             .fold(f64::INFINITY, f64::min);
         for (s, slot) in self.slots.iter_mut().enumerate() {
-            if !enabled {
-                slot.match_target = 1.0;
+            if !level_match {
+                slot.match_gain.set_target(1.0);
             } else if reference.is_finite() && loudness[s] > MATCH_GATE_LUFS {
                 let db = (reference - loudness[s]).clamp(-MATCH_RANGE_DB, 0.0);
-                slot.match_target = db_to_gain(db);
+                slot.match_gain.set_target(db_to_gain(db));
             }
-            self.shared.slots[s]
-                .match_gain_db
-                .store((20.0 * slot.match_gain.log10()) as f32, Ordering::Relaxed);
+            self.shared.slots[s].match_gain_db.store(
+                gain_to_db(slot.match_gain.value()) as f32,
+                Ordering::Relaxed,
+            );
         }
     }
 
-    /// Publish the meter window every ~100 ms and start a new one.
+    /// After the block: the heard models' latency, the parts of changed slots, the meter window.
+    fn finish_block(&mut self, frames: usize, actions: &mut BlockActions) {
+        if let Some(latency) = self.slots[self.heard].current.as_ref().map(|m| m.latency()) {
+            if latency != self.latency {
+                self.latency = latency;
+                actions.latency = Some(latency);
+            }
+        }
+        for s in 0..SLOTS {
+            if self.slots[s].changed {
+                self.slots[s].changed = false;
+                self.publish_parts(s);
+            }
+        }
+        self.publish_meters(frames);
+        self.shared.heard.store(self.heard, Ordering::Relaxed);
+        self.shared.circuit.store(self.key.id, Ordering::Relaxed);
+        self.shared.latency.store(self.latency, Ordering::Relaxed);
+    }
+
+    fn publish_static(&mut self) {
+        self.shared
+            .sample_rate
+            .store(self.sample_rate, Ordering::Relaxed);
+        self.shared.latency.store(self.latency, Ordering::Relaxed);
+        self.shared.models.store(self.channels, Ordering::Relaxed);
+        for s in 0..SLOTS {
+            self.publish_parts(s);
+            self.slots[s].changed = false;
+        }
+    }
+
+    fn publish_parts(&self, s: usize) {
+        let r = &self.shared.slots[s];
+        let store = |a: &atomic_float::AtomicF32, v: f64| a.store(v as f32, Ordering::Relaxed);
+        match self.slots[s].current.as_ref() {
+            Some(m) => {
+                let p = &m.parts;
+                store(&r.threshold_positive, p.threshold_positive);
+                store(&r.threshold_negative, p.threshold_negative);
+                store(&r.volts_positive, p.volts_positive);
+                store(&r.volts_negative, p.volts_negative);
+                r.family.store(p.family as u32, Ordering::Relaxed);
+                r.own_knee.store(p.own_knee, Ordering::Relaxed);
+                r.circuit.store(m.spec.circuit, Ordering::Relaxed);
+            }
+            None => {
+                for a in [
+                    &r.threshold_positive,
+                    &r.threshold_negative,
+                    &r.volts_positive,
+                    &r.volts_negative,
+                ] {
+                    store(a, f64::NAN);
+                }
+                r.circuit.store(0, Ordering::Relaxed);
+            }
+        }
+    }
+
+    /// Publish the meter window every 100 ms and start a new one.
     fn publish_meters(&mut self, frames: usize) {
         if self.meter_countdown > frames {
             self.meter_countdown -= frames;
             return;
         }
-        self.meter_countdown = (self.sample_rate * 0.1) as usize;
+        self.meter_countdown = (self.sample_rate * METER_SECONDS) as usize;
         for (s, slot) in self.slots.iter_mut().enumerate() {
-            let r = &self.shared.slots[s];
-            let mut peak_pos = f64::NEG_INFINITY;
-            let mut peak_neg = f64::INFINITY;
-            let (mut clamped, mut samples) = (0u64, 0u64);
-            let (mut ipk, mut wpp, mut wnp, mut wpa, mut wna) =
-                (0.0f64, 0.0f64, 0.0f64, 0.0f64, 0.0f64);
-            for e in slot.current.engines.iter_mut() {
-                let m = *e.meters();
-                if m.samples > 0 {
-                    peak_pos = peak_pos.max(m.clamp_peak_positive);
-                    peak_neg = peak_neg.min(m.clamp_peak_negative);
-                    clamped += m.clamped_samples;
-                    samples += m.samples;
-                    ipk = ipk.max(m.zener_peak_current);
-                    wpp = wpp.max(m.positive_part_peak_watts);
-                    wnp = wnp.max(m.negative_part_peak_watts);
-                    let (a, b) = m.average_watts();
-                    wpa = wpa.max(a);
-                    wna = wna.max(b);
-                }
-                e.reset_meters();
-            }
-            if samples == 0 {
+            let Some(w) = slot.current.as_mut().and_then(|m| m.take_meters()) else {
                 continue;
-            }
-            r.clamp_peak_positive
-                .store(peak_pos as f32, Ordering::Relaxed);
-            r.clamp_peak_negative
-                .store(peak_neg as f32, Ordering::Relaxed);
-            r.share_clamped
-                .store((clamped as f64 / samples as f64) as f32, Ordering::Relaxed);
-            r.zener_peak_current.store(ipk as f32, Ordering::Relaxed);
-            r.positive_peak_watts.store(wpp as f32, Ordering::Relaxed);
-            r.negative_peak_watts.store(wnp as f32, Ordering::Relaxed);
-            r.positive_average_watts
-                .store(wpa as f32, Ordering::Relaxed);
-            r.negative_average_watts
-                .store(wna as f32, Ordering::Relaxed);
+            };
+            let r = &self.shared.slots[s];
+            let store = |a: &atomic_float::AtomicF32, v: f64| a.store(v as f32, Ordering::Relaxed);
+            store(&r.clamp_peak_positive, w.clamp_peak_positive);
+            store(&r.clamp_peak_negative, w.clamp_peak_negative);
+            store(&r.share_clamped, w.share_clamped);
+            store(&r.zener_peak_current, w.zener_peak_current);
+            store(&r.positive_peak_watts, w.positive_peak_watts);
+            store(&r.negative_peak_watts, w.negative_peak_watts);
+            store(&r.positive_average_watts, w.positive_average_watts);
+            store(&r.negative_average_watts, w.negative_average_watts);
         }
         self.shared.publications.fetch_add(1, Ordering::Relaxed);
-    }
-}
-
-#[inline]
-pub fn db_to_gain(db: f64) -> f64 {
-    if db.is_finite() {
-        10f64.powf(db / 20.0)
-    } else {
-        1.0
     }
 }

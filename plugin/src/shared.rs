@@ -1,9 +1,13 @@
 //! Data the audio thread hands to the editor: fixed arrays of atomics with an atomic write index, written by the
 //! audio thread only, read by the editor. No locks, no allocation after construction.
 
-use crate::params::SLOTS;
 use atomic_float::{AtomicF32, AtomicF64};
+use breakdown_dsp::circuit::MAX_POSITIONS;
 use std::sync::atomic::{AtomicBool, AtomicU32, AtomicUsize, Ordering};
+
+/// Compared positions at run time: every switch position a circuit can have, then the candidate
+/// (`session::CANDIDATE`).
+pub const SLOTS: usize = MAX_POSITIONS + 1;
 
 /// Samples kept for the scope and the spectrum (a power of two).
 pub const RING_LEN: usize = 16_384;
@@ -61,12 +65,18 @@ pub struct SlotReadout {
     pub negative_peak_watts: AtomicF32,
     pub positive_average_watts: AtomicF32,
     pub negative_average_watts: AtomicF32,
-    /// Clamp thresholds of this position's pair at 10 uA (V); NaN for "off".
+    /// Where the pair conducts 10 uA (`engine::CLAMPED_CURRENT`), positive and negative (V); NaN without it.
     pub threshold_positive: AtomicF32,
     pub threshold_negative: AtomicF32,
-    /// Zener voltages the model runs with (V); NaN for "off".
+    /// Vz of the parts the model runs with (V); NaN for a missing part.
     pub volts_positive: AtomicF32,
     pub volts_negative: AtomicF32,
+    /// The family the parts' rating is judged against: 0 = 1N47xxA (1 W), 1 = 1N52xxB (1/2 W).
+    pub family: AtomicU32,
+    /// The parts carry the circuit file's own knee data (not a family row).
+    pub own_knee: AtomicBool,
+    /// Id of the circuit the running models belong to (0: no model).
+    pub circuit: AtomicU32,
     /// Unmatched K-weighted short-term loudness of the listening output (LUFS, one channel).
     pub loudness: AtomicF32,
     /// Level-match gain applied now (dB).
@@ -82,7 +92,10 @@ pub struct Shared {
     /// Listening-point signal of the heard position (full-scale units, host rate).
     pub listen: Ring,
     pub slots: [SlotReadout; SLOTS],
+    /// The runtime slot heard (a position index, or `session::CANDIDATE`).
     pub heard: AtomicUsize,
+    /// Id of the circuit the processor follows now.
+    pub circuit: AtomicU32,
     pub sample_rate: AtomicF64,
     pub latency: AtomicU32,
     pub models: AtomicUsize,
@@ -97,6 +110,7 @@ impl Default for Shared {
             listen: Ring::default(),
             slots: Default::default(),
             heard: AtomicUsize::new(1),
+            circuit: AtomicU32::new(0),
             sample_rate: AtomicF64::new(48_000.0),
             latency: AtomicU32::new(0),
             models: AtomicUsize::new(1),

@@ -3,7 +3,7 @@
 on Linux) and write the result as a 32-bit float WAV. Used by tests/tests/vst3_host.rs.
 
 usage: pedalboard_render.py BUNDLE.vst3 IN.wav OUT.wav BLOCK [--set NAME=TEXT]... [--raw NAME=NORMALIZED]...
-  --set  sets a parameter by its displayed value (e.g. switch="Pair 2")
+  --set  sets a parameter by its displayed value (e.g. quality=2x)
   --raw  sets a parameter's normalized (0..1) value, exact for linear ranges (e.g. gain=0.6)
 Prints one line "latency=N" (the latency the plugin reports to the host).
 Needs: pip install pedalboard  (numpy comes with it)

@@ -3,6 +3,8 @@
 //! The device formulas here are typed again from their published form (BRIEF section 4) rather than called
 //! from the model, so a test comparing the two checks the model against the paper, not against itself.
 
+pub mod tone_stack;
+
 use realfft::num_complex::Complex;
 use realfft::RealFftPlanner;
 use std::f64::consts::PI;

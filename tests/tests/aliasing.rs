@@ -47,7 +47,7 @@ fn settings(position: usize) -> Settings {
 
 fn measure(freq: usize, quality: Quality) -> Measured {
     let mut engine =
-        Engine::new(&Circuit::reference(), RATE, quality, settings(1)).expect("reference circuit");
+        Engine::new(&Circuit::one_stage(), RATE, quality, settings(1)).expect("reference circuit");
     let skip = (SETTLE_SECONDS * RATE) as usize;
     // The tone runs on past the block: the linear-phase filters look ahead by about half their latency (tens of samples), so a block that ended
     // with the input would carry the filter's pre-echo of the cut.
@@ -86,7 +86,7 @@ fn measure(freq: usize, quality: Quality) -> Measured {
 
 /// Peak of the clamp node with the switch at "off" (nothing clamps), after 50 ms.
 fn open_peak(freq: usize) -> f64 {
-    let mut engine = Engine::new(&Circuit::reference(), RATE, Quality::X4, settings(0))
+    let mut engine = Engine::new(&Circuit::one_stage(), RATE, Quality::X4, settings(0))
         .expect("reference circuit");
     let input = sine(freq as f64, RATE, AMPLITUDE, 4_800);
     let out = engine.render(&input, Probe::Clamp);

@@ -347,7 +347,7 @@ impl Instance {
         v
     }
 
-    /// The CLAP value for a displayed text ("0.6", "Pair 2", "2x"), through params.text_to_value.
+    /// The CLAP value for a displayed text ("0.6", "2", "2x"), through params.text_to_value.
     fn text_to_value(&self, name: &str, text: &str) -> f64 {
         let id = self.param(name).id;
         let params = unsafe { &*self.params };
@@ -616,9 +616,9 @@ impl Drop for Instance {
     }
 }
 
-/// Settings for an exact comparison: one position heard, level match off, no compare key, wiper, no trim.
+/// Settings for an exact comparison: one position heard, level match off, A/B off, wiper, no trim.
 fn exact_settings(inst: &Instance, s: &PluginSettings) {
-    let switch = ["Off", "Pair 1", "Pair 2"][s.position];
+    let switch = format!("{}", s.position);
     let quality = match s.quality {
         Quality::X1 => "1x",
         Quality::X2 => "2x",
@@ -628,16 +628,16 @@ fn exact_settings(inst: &Instance, s: &PluginSettings) {
     };
     let gain = format!("{}", s.gain);
     let level = format!("{}", s.level);
-    let cal = format!("{}", s.input_calibration);
+    let cal = format!("{}", s.volts_at_full_scale);
     inst.flush(&[
         ("Gain", &gain),
         ("Level", &level),
-        ("Switch", switch),
-        ("Compare key", "Off"),
+        ("Switch position", &switch),
+        ("A/B: hear compare-with", "Off"),
         ("Level match", "Off"),
         ("Listening point", "Wiper"),
         ("Output trim", "0"),
-        ("Input calibration", &cal),
+        ("Volts at full scale", &cal),
         ("Quality", quality),
     ]);
 }
@@ -859,17 +859,17 @@ fn automating_every_parameter_keeps_the_output_finite() {
     for name in [
         "Gain",
         "Level",
-        "Switch",
-        "Compare key",
+        "Treble",
+        "Middle",
+        "Bass",
+        "Switch position",
         "Compare with",
-        "Pair 1 positive clamp",
-        "Pair 1 negative clamp",
-        "Pair 2 positive clamp",
-        "Pair 2 negative clamp",
-        "Candidate positive clamp",
-        "Candidate negative clamp",
+        "A/B: hear compare-with",
+        "Candidate positive Vz",
+        "Candidate negative Vz",
+        "Candidate family",
         "Snap to E24",
-        "Input calibration",
+        "Volts at full scale",
         "Output trim",
         "Quality",
         "Listening point",
@@ -933,8 +933,8 @@ fn automating_every_parameter_keeps_the_output_finite() {
             vec![param_event(0, info.id, info.default)],
         );
     }
-    // With +24 dB of trim and the input calibration at 5 V the wiper can swing past full scale, but the
-    // stage is powered from its supply: the listening output (wiper / 20 V) stays within a few units.
+    // With +24 dB of trim, or volts at full scale at 20 V, the wiper can swing past full scale, but the stage
+    // is powered from its supply (300 V): the listening output (wiper / 20 V) stays within a few tens of units.
     assert!(worst < 100.0, "output peak {worst} while automating");
     // Still processing after everything: the output moves with the input.
     let x = next_input(4096.min(input.len()));
@@ -955,7 +955,7 @@ fn saved_state_reloads_into_a_fresh_instance_with_identical_output() {
         level: 0.7,
         position: 2,
         quality: Quality::X2,
-        input_calibration: 1.0,
+        volts_at_full_scale: 1.0,
     };
     let input = di_signal(rate, 0.2, 0.8);
     let (reference, model_latency) = reference_render(rate, s, &input);
@@ -1010,7 +1010,11 @@ fn damaged_state_loads_defaults_and_keeps_processing() {
     let (reference, model_latency) = reference_render(rate, defaults, &input);
 
     let changed = Instance::new();
-    changed.flush(&[("Gain", "0.3"), ("Switch", "Pair 2"), ("Output trim", "6")]);
+    changed.flush(&[
+        ("Gain", "0.3"),
+        ("Switch position", "2"),
+        ("Output trim", "6"),
+    ]);
     let good = changed.save();
 
     // A pseudo-random byte string (xorshift from a fixed start value) with and without a plausible length prefix.
@@ -1110,6 +1114,191 @@ fn damaged_state_loads_defaults_and_keeps_processing() {
             found,
             "no logged reason for the newer state in the plugin log"
         ),
+        None => eprintln!("NICE_LOG set by the caller: the logged reason is not checked"),
+    }
+}
+
+/// A circuit file of our own invented values: the one-stage circuit's layout (presets-demo/one-stage.toml) with
+/// other part values, a four-way switch, and one part with its own knee data (the 1N5228B row of
+/// dsp/src/parts.rs, a table typed from memory; any in-range figures do for this test).
+const INVENTED_CIRCUIT: &str = r#"
+name = "invented bench circuit"
+supply_volts = 285.0
+
+[input]
+volts_at_full_scale = 0.5
+
+[gain_stage]
+tube = "12AX7"
+gain_pot_law = "log"
+grid_stopper = 33e3
+plate_resistor = 150e3
+cathode_resistor = 1.8e3
+cathode_bypass = 10e-6
+
+[follower]
+tube = "12AX7"
+cathode_resistor = 82e3
+
+[clamp]
+coupling_cap = 47e-9
+feed_resistor = 10e3
+level_pot = 500e3
+level_pot_law = "log"
+placement = "at-wiper"
+load_resistor = 470e3
+
+[[clamp.position]]
+name = "open"
+
+[[clamp.position]]
+name = "15 / 15"
+positive = { volts = 15.0 }
+negative = { volts = 15.0 }
+
+[[clamp.position]]
+name = "10 / 3.9 own knee"
+positive = { volts = 10.0 }
+negative = { volts = 3.9, izt = 0.02, zzt = 23.0, izk = 0.00025, zzk = 1900.0 }
+
+[[clamp.position]]
+name = "6.8 / 6.8"
+positive = { volts = 6.8 }
+negative = { volts = 6.8 }
+"#;
+
+/// A saved CLAP state (8-byte little-endian length, then the framework's JSON) with our `breakdown` field set
+/// to `field`.
+fn state_with_field(saved: &[u8], field: serde_json::Value) -> Vec<u8> {
+    let mut json: serde_json::Value = serde_json::from_slice(&saved[8..])
+        .expect("the saved state is JSON after its 8-byte length");
+    json["fields"]["breakdown"] = serde_json::Value::String(field.to_string());
+    let text = serde_json::to_vec(&json).unwrap();
+    let mut bytes = (text.len() as u64).to_le_bytes().to_vec();
+    bytes.extend_from_slice(&text);
+    bytes
+}
+
+/// The session's circuit travels in the state: a circuit file of our own loaded through the state renders what
+/// `breakdown_dsp::Engine::render` renders on that file with the same settings (after the reported latency);
+/// the instance saves it, a fresh instance reloads it and plays identically, and saves the same state again.
+#[test]
+fn a_circuit_loaded_through_the_state_plays_like_the_renderer_and_survives_save_and_reload() {
+    use breakdown_dsp::Circuit;
+    let rate = 48_000.0;
+    let circuit = Circuit::from_toml(INVENTED_CIRCUIT).expect("our invented circuit parses");
+    let s = PluginSettings {
+        gain: 0.7,
+        level: 0.6,
+        position: 2,
+        quality: Quality::X2,
+        // The file's own [input] value; the plugin's parameter is the session's calibration.
+        volts_at_full_scale: 0.5,
+    };
+    let input = di_signal(rate, 0.25, 0.8);
+    let (reference, model_latency) = plugin_host::reference_render_on(&circuit, rate, s, &input);
+    // It really is another circuit: the built-in one plays something else with the same settings.
+    let (builtin, _) = reference_render(rate, s, &input);
+    assert!(
+        max_diff(&builtin, &reference).0 > 1e-3,
+        "the invented circuit renders like the built-in one"
+    );
+
+    let template = Instance::new();
+    exact_settings(&template, &s);
+    let session = state_with_field(
+        &template.save(),
+        serde_json::json!({
+            "version": 2,
+            "scope_ms": 20.0,
+            "circuit": INVENTED_CIRCUIT,
+            "circuit_file": "invented.toml",
+        }),
+    );
+    let render = |inst: &mut Instance| {
+        inst.activate(rate, 256);
+        let latency = inst.latency() as usize;
+        let mut padded = input.clone();
+        padded.resize(input.len() + latency, 0.0);
+        let out = inst.run(&[padded.clone(), padded], 2, 256);
+        inst.deactivate();
+        (out, latency)
+    };
+    let mut a = Instance::new();
+    assert!(
+        a.load(&session),
+        "the plugin refused a state with our circuit"
+    );
+    let (out_a, latency_a) = render(&mut a);
+    for (c, ch) in out_a.iter().enumerate() {
+        check_against_model(
+            &format!("circuit from the state, channel {c}"),
+            ch,
+            &reference,
+            latency_a,
+            model_latency,
+        );
+    }
+
+    let saved = a.save();
+    let json: serde_json::Value = serde_json::from_slice(&saved[8..]).unwrap();
+    let field: serde_json::Value =
+        serde_json::from_str(json["fields"]["breakdown"].as_str().expect("our field")).unwrap();
+    assert_eq!(
+        field["circuit"].as_str(),
+        Some(INVENTED_CIRCUIT),
+        "the saved state carries the circuit"
+    );
+    assert_eq!(field["version"], 2);
+
+    let mut b = Instance::new();
+    assert!(b.load(&saved), "a fresh instance refused the saved state");
+    let (out_b, latency_b) = render(&mut b);
+    assert_eq!(latency_a, latency_b);
+    assert!(out_a == out_b, "output after reloading the state differs");
+    assert_eq!(b.save(), saved, "state changed across save/load/save");
+}
+
+/// A state whose circuit does not read (a value out of its range) loads with the built-in circuit, keeps its
+/// other settings, plays the built-in circuit exactly, and logs why.
+#[test]
+fn a_state_with_a_refused_circuit_runs_the_builtin_circuit_with_the_reason_logged() {
+    let rate = 48_000.0;
+    let s = PluginSettings {
+        gain: 0.6,
+        position: 2,
+        ..PluginSettings::default()
+    };
+    let input = di_signal(rate, 0.15, 0.7);
+    let (reference, model_latency) = reference_render(rate, s, &input);
+    let template = Instance::new();
+    exact_settings(&template, &s);
+    let bad = INVENTED_CIRCUIT.replace("supply_volts = 285.0", "supply_volts = 2850.0");
+    let session = state_with_field(
+        &template.save(),
+        serde_json::json!({ "version": 2, "scope_ms": 20.0, "circuit": bad }),
+    );
+    let mut inst = Instance::new();
+    assert!(inst.load(&session));
+    assert_eq!(
+        inst.value(inst.param("Gain").id),
+        0.6f32 as f64,
+        "other settings kept"
+    );
+    inst.activate(rate, 128);
+    let latency = inst.latency() as usize;
+    let mut padded = input.clone();
+    padded.resize(input.len() + latency, 0.0);
+    let out = inst.run(&[padded.clone(), padded], 2, 128);
+    check_against_model(
+        "after a refused circuit",
+        &out[0],
+        &reference,
+        latency,
+        model_latency,
+    );
+    match plugin_log_contains("the saved circuit is refused") {
+        Some(found) => assert!(found, "no logged reason for the refused circuit"),
         None => eprintln!("NICE_LOG set by the caller: the logged reason is not checked"),
     }
 }

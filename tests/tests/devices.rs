@@ -299,13 +299,13 @@ fn twenty_volt_pair_clamps_near_21_volts_at_test_current() {
 fn reference_circuit_switch_positions_hold_the_brief_parts() {
     // BRIEF section 3: position 1 a symmetric pair of 20 V parts, position 2 18 V positive / 5.6 V negative.
     let engine = Engine::new(
-        &Circuit::reference(),
+        &Circuit::one_stage(),
         48_000.0,
         Quality::X1,
         Settings::default(),
     )
     .expect("reference circuit");
-    let stage = engine.stage();
+    let stage = engine.model();
     assert!(stage.pair(0).expect("off").is_open());
     let (p, n) = stage.pair(1).expect("symmetric").thresholds_at(12.5e-3);
     assert!((p - 21.0).abs() < 0.5 && (n + 21.0).abs() < 0.5, "{p} {n}");

@@ -71,7 +71,7 @@ fn main() {
                 position,
                 ..Settings::default()
             };
-            let mut engine = Engine::new(&Circuit::reference(), rate, quality, settings)
+            let mut engine = Engine::new(&Circuit::one_stage(), rate, quality, settings)
                 .expect("reference circuit");
             let n = count(|| {
                 let mut sum = 0.0;
@@ -84,7 +84,7 @@ fn main() {
                 engine.set_position((position + 1) % 3);
                 engine.set_input_calibration(2.0);
                 engine.process_block(&input[2_400..], &mut output[2_400..], Probe::Wiper);
-                for probe in Probe::ALL {
+                for probe in Probe::FIXED {
                     sum += engine.process_sample(0.1).get(probe);
                 }
                 std::hint::black_box(sum);

@@ -1,7 +1,7 @@
 //! Behaviour at the edges: silence, every supported sample rate, exact latency, and bad audio in.
 
 use breakdown_dsp::oversampling::{self, Downsampler};
-use breakdown_dsp::{Circuit, Engine, Frame, Probe, Quality, Settings, StageProbe};
+use breakdown_dsp::{Circuit, Engine, Frame, Probe, Quality, Settings};
 use breakdown_tests::{peak, phasor, rel, sine};
 use proptest::prelude::*;
 use std::f64::consts::PI;
@@ -9,7 +9,7 @@ use std::f64::consts::PI;
 const RATES: [f64; 6] = [22_050.0, 44_100.0, 48_000.0, 96_000.0, 192_000.0, 384_000.0];
 
 fn engine(rate: f64, quality: Quality, settings: Settings) -> Engine {
-    Engine::new(&Circuit::reference(), rate, quality, settings).expect("reference circuit")
+    Engine::new(&Circuit::one_stage(), rate, quality, settings).expect("reference circuit")
 }
 
 fn frame_values(f: &Frame) -> [f64; 6] {
@@ -23,15 +23,12 @@ fn frame_values(f: &Frame) -> [f64; 6] {
     ]
 }
 
-fn node_values(p: &StageProbe) -> [f64; 6] {
-    [
-        p.gain_grid_volts,
-        p.gain_cathode_volts,
-        p.gain_plate_volts,
-        p.follower_cathode_volts,
-        p.clamp_volts,
-        p.wiper_volts,
-    ]
+/// Every node voltage of the model after its last sample.
+fn node_values(e: &Engine) -> Vec<f64> {
+    let m = e.model();
+    (0..m.netlist().nodes.len())
+        .map(|i| m.node_volts(i))
+        .collect()
 }
 
 /// Silence at the input for `samples`; returns the largest |probe| seen (volts, and amps for the pair current).
@@ -63,12 +60,12 @@ fn silence_in_gives_silence_out_from_the_first_sample() {
                 ..Settings::default()
             };
             let mut e = engine(48_000.0, quality, settings);
-            let dc = *e.stage().probe();
+            let dc = node_values(&e);
             let (volts, amps) = silent_run(&mut e, 4_800);
-            let after = *e.stage().probe();
-            let drift = node_values(&after)
+            let after = node_values(&e);
+            let drift = after
                 .iter()
-                .zip(node_values(&dc))
+                .zip(&dc)
                 .fold(0.0f64, |m, (a, b)| m.max((a - b).abs()));
             println!(
                 "{quality:?} position {position}: largest probe {volts:.2e} V, pair current {amps:.2e} A, node drift \
@@ -90,7 +87,7 @@ fn silence_in_gives_silence_out_from_the_first_sample() {
         }
     }
     // The at-wiper placement too (BRIEF section 5), at the default quality.
-    let mut circuit = Circuit::reference();
+    let mut circuit = Circuit::one_stage();
     circuit.clamp.placement = breakdown_dsp::Placement::AtWiper;
     let mut e = Engine::new(&circuit, 48_000.0, Quality::X4, Settings::default()).expect("circuit");
     let (volts, _) = silent_run(&mut e, 4_800);
@@ -290,7 +287,7 @@ fn bad_run(bad: &dyn Fn(usize, f32) -> f32, amplitude: f64) -> (Vec<f64>, Vec<f6
             assert!(v.is_finite(), "non-finite output at sample {n}");
         }
         out.push(f.clamp_volts);
-        cathode.push(e.stage().probe().gain_cathode_volts);
+        cathode.push(e.readout().gain_stage().cathode_volts);
     }
     (out, cathode)
 }
@@ -313,7 +310,7 @@ fn bad_audio_never_gives_non_finite_output_and_the_model_recovers() {
     //      at least as fast as the capacitor's own time constant through the level pot, C (Rfeed + Rpot path)
     //      (first-order RC discharge, general circuit theory; the clamp, when it conducts, only speeds it up).
     // Nothing is assumed about the first 100 ms: a 100 V spike at the jack really does slam the stage.
-    let circuit = Circuit::reference();
+    let circuit = Circuit::one_stage();
     let c = &circuit.clamp;
     let level = Settings::default().level;
     let (top, bottom) = c.level_pot_law.legs(c.level_pot, level);

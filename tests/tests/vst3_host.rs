@@ -258,7 +258,8 @@ fn pedalboard_renders_the_vst3_like_the_model() {
                 position: 2,
                 ..PluginSettings::default()
             },
-            &["--set", "switch=Pair 2", "--raw", "gain=0.6"],
+            // position 2 of the integer range 0..12: normalised 2/12
+            &["--raw", "switch_position=0.16666667", "--raw", "gain=0.6"],
         ),
         (
             48_000,

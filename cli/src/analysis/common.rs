@@ -2,7 +2,7 @@
 //! the jack, and one render that returns the meters over a measuring window plus the wiper level.
 
 use breakdown_dsp::circuit::{SwitchPosition, ZenerSpec};
-use breakdown_dsp::{Circuit, Engine, Meters, Quality, Settings, StageProbe};
+use breakdown_dsp::{Circuit, Engine, Meters, Quality, Readout, Settings};
 use std::f64::consts::PI;
 
 /// Host sample rate of every analysis render (Hz).
@@ -135,7 +135,7 @@ impl Stimulus {
 #[derive(Clone, Copy, Debug)]
 pub struct Outcome {
     pub meters: Meters,
-    pub idle: StageProbe,
+    pub idle: Readout,
     /// RMS of the level pot wiper over the measuring window (V).
     pub wiper_rms: f64,
     /// RMS of the clamp node over the measuring window (V).
@@ -154,8 +154,17 @@ impl Outcome {
 
 /// Render `stimulus` through `rig` and measure the window. `engine` is reused when given (reset first).
 pub fn run_with(engine: &mut Engine, stimulus: &Stimulus) -> Outcome {
+    run_into(engine, stimulus, None)
+}
+
+/// The same, also keeping the wiper volts over the measuring window in `wiper`.
+pub fn run_into(
+    engine: &mut Engine,
+    stimulus: &Stimulus,
+    mut wiper: Option<&mut Vec<f32>>,
+) -> Outcome {
     engine.reset();
-    let idle = *engine.stage().probe();
+    let idle = engine.readout();
     let latency = engine.latency();
     let total = stimulus.volts.len() + latency;
     let mut sum_sq = 0.0;
@@ -178,6 +187,9 @@ pub fn run_with(engine: &mut Engine, stimulus: &Stimulus) -> Outcome {
         let frame = engine.process_sample(x);
         // The frame lags the input by `latency` samples.
         if n >= stimulus.measure_from + latency {
+            if let Some(w) = wiper.as_deref_mut() {
+                w.push(frame.wiper_volts as f32);
+            }
             sum_sq += frame.wiper_volts * frame.wiper_volts;
             clamp_sq += frame.clamp_volts * frame.clamp_volts;
             counted += 1;
@@ -196,6 +208,30 @@ pub fn run_with(engine: &mut Engine, stimulus: &Stimulus) -> Outcome {
 pub fn run(rig: &Rig, stimulus: &Stimulus) -> Result<Outcome, String> {
     let mut engine = rig.engine_at(stimulus.rate)?;
     checked(rig, run_with(&mut engine, stimulus))
+}
+
+/// Render once on a fresh engine, with the wiper's integrated loudness over the measuring window (LUFS, EBU
+/// R128 via ebur128; a window shorter than the 400 ms gating block is repeated to 1.2 s first, which for a
+/// steady tone measures the same level). -inf when silent.
+pub fn run_with_loudness(rig: &Rig, stimulus: &Stimulus) -> Result<(Outcome, f64), String> {
+    let mut engine = rig.engine_at(stimulus.rate)?;
+    let mut wiper = Vec::new();
+    let o = checked(rig, run_into(&mut engine, stimulus, Some(&mut wiper)))?;
+    Ok((o, loudness_lufs(&wiper, stimulus.rate)?))
+}
+
+/// Integrated loudness of a mono signal (LUFS), repeated to at least 1.2 s when shorter.
+pub fn loudness_lufs(signal: &[f32], rate: f64) -> Result<f64, String> {
+    if signal.is_empty() {
+        return Ok(f64::NEG_INFINITY);
+    }
+    let want = (1.2 * rate) as usize;
+    let mut tiled = signal.to_vec();
+    while tiled.len() < want {
+        tiled.extend_from_slice(signal);
+    }
+    let (lufs, _) = crate::compare::loudness::measure(&[tiled], rate as u32)?;
+    Ok(lufs)
 }
 
 /// The outcome, or a clear error when the model's readouts are not finite (the solver diverged).
@@ -229,13 +265,32 @@ pub fn checked(rig: &Rig, o: Outcome) -> Result<Outcome, String> {
     }
 }
 
-/// Run `jobs` over two worker threads (the machine has two cores), keeping the order of results.
+/// A progress bar is on screen (only the outermost `parallel` shows one).
+static SHOWING: std::sync::atomic::AtomicBool = std::sync::atomic::AtomicBool::new(false);
+
+/// Run `jobs` over two worker threads (the machine has two cores), keeping the order of results. When the
+/// work takes longer than two seconds and stderr is a terminal, a progress bar counts the jobs.
 pub fn parallel<T: Send, R: Send>(jobs: Vec<T>, work: impl Fn(T) -> R + Sync) -> Vec<R> {
+    use std::sync::atomic::Ordering;
     let threads = std::thread::available_parallelism()
         .map(|n| n.get())
         .unwrap_or(2)
         .clamp(1, 2);
     let count = jobs.len();
+    let outermost = !SHOWING.swap(true, Ordering::SeqCst);
+    let terminal = std::io::IsTerminal::is_terminal(&std::io::stderr());
+    let bar = indicatif::ProgressBar::with_draw_target(
+        Some(count as u64),
+        indicatif::ProgressDrawTarget::hidden(),
+    );
+    bar.set_style(
+        indicatif::ProgressStyle::with_template(
+            "analysing {wide_bar} {pos}/{len} renders  {elapsed} (eta {eta})",
+        )
+        .unwrap_or_else(|_| indicatif::ProgressStyle::default_bar()),
+    );
+    let started = std::time::Instant::now();
+    let shown = std::sync::atomic::AtomicBool::new(false);
     let queue = std::sync::Mutex::new(jobs.into_iter().enumerate().collect::<Vec<_>>());
     let results = std::sync::Mutex::new((0..count).map(|_| None).collect::<Vec<Option<R>>>());
     std::thread::scope(|s| {
@@ -247,9 +302,21 @@ pub fn parallel<T: Send, R: Send>(jobs: Vec<T>, work: impl Fn(T) -> R + Sync) ->
                 if let Ok(mut out) = results.lock() {
                     out[index] = Some(r);
                 }
+                bar.inc(1);
+                if outermost
+                    && terminal
+                    && started.elapsed() > crate::compare::PROGRESS_AFTER
+                    && !shown.swap(true, Ordering::Relaxed)
+                {
+                    bar.set_draw_target(indicatif::ProgressDrawTarget::stderr());
+                }
             });
         }
     });
+    bar.finish_and_clear();
+    if outermost {
+        SHOWING.store(false, Ordering::SeqCst);
+    }
     results
         .into_inner()
         .unwrap_or_default()
@@ -276,27 +343,6 @@ pub fn lin_space(low: f64, high: f64, count: usize) -> Vec<f64> {
     (0..count)
         .map(|k| low + (high - low) * k as f64 / (count - 1) as f64)
         .collect()
-}
-
-/// Parse `--quality` (1, 2, 4, 8, 16).
-pub fn parse_quality(text: &str) -> Result<Quality, String> {
-    text.trim()
-        .parse::<usize>()
-        .ok()
-        .and_then(Quality::from_factor)
-        .ok_or_else(|| format!("--quality {text}: expected 1, 2, 4, 8 or 16 (oversampling factor)"))
-}
-
-/// Load `--circuit FILE` or the built-in reference circuit.
-pub fn load_circuit(path: Option<&std::path::Path>) -> Result<Circuit, String> {
-    match path {
-        None => Ok(Circuit::reference()),
-        Some(p) => {
-            let text = std::fs::read_to_string(p)
-                .map_err(|e| format!("circuit file {}: {e}", p.display()))?;
-            Circuit::from_toml(&text).map_err(|e| format!("{}: {e}", p.display()))
-        }
-    }
 }
 
 /// Settings from `--set name=value` assignments over the defaults.

@@ -9,96 +9,139 @@ pub mod suggest;
 #[cfg(test)]
 mod tests;
 
-use common::{load_circuit, parse_quality, parse_settings, Rig};
+use crate::options::{circuit_source, load_circuit, parse_quality, pick, CalibrationArgs};
+use common::{parse_settings, Rig};
 use std::path::PathBuf;
 
-/// Safety text (BRIEF section 8), printed with every analysis.
-pub const SAFETY: &str = "Safety: valve amplifiers run at several hundred volts and their filter capacitors \
-stay charged after power-off; the numbers this tool prints are a simulation, not a measurement of a live \
-chassis. Work on a live amp only with the training to do so; drain and verify capacitors; follow local \
-electrical codes; when in doubt, have a qualified technician do the work. Check part voltage and power ratings \
-against the values the tool reports with margin.";
+/// Safety text (docs/model.md section 8), printed with every analysis.
+pub const SAFETY: &str = concat!("Safety: ", safety_text!());
+
+/// Why the analyses render at 2x by default (render and compare use 4x): their questions are peaks, onsets and
+/// average powers of tones, which 2x reads as well as 4x (the analysis tests check them against direct
+/// renders), in half the time, over many renders.
+const ANALYSIS_QUALITY_HELP: &str = "Oversampling factor of the renders: 1, 2, 4, 8 or 16 (default 2, not the 4 of \
+render and compare: peaks, onsets and average power of tones read the same at 2x, in half the time over many renders)";
+
+/// Bounds on what one analysis may ask for (renders grow with the product).
+pub const MAX_STEPS: i64 = 64;
+pub const MAX_SECONDS: f64 = 600.0;
 
 #[derive(clap::Args)]
 pub struct OnsetArgs {
-    /// Circuit file (TOML); the built-in reference circuit without it.
-    #[arg(long)]
+    /// Circuit file (TOML); the built-in preamp without it.
+    #[arg(long, value_name = "FILE")]
     circuit: Option<PathBuf>,
-    /// Setting name=value (gain, level, position); gain marks the row of the summary line.
+    /// Setting name=value (gain, level, position counted from 0, treble, middle, bass); gain marks the row of
+    /// the summary line.
     #[arg(long = "set", value_name = "NAME=VALUE")]
     set: Vec<String>,
-    /// Oversampling factor of the renders (1, 2, 4, 8, 16).
-    #[arg(long, default_value = "2")]
+    #[arg(long, default_value = "2", help = ANALYSIS_QUALITY_HELP)]
     quality: String,
     /// Output folder for onset.csv and onset.svg.
-    #[arg(long, default_value = "breakdown-onset")]
-    out: PathBuf,
-    /// Gain steps from 0.1 to 1.
-    #[arg(long, default_value_t = 12)]
-    gain_steps: usize,
-    /// Input level steps from 0.02 to 2 V peak (log-spaced).
-    #[arg(long, default_value_t = 16)]
-    level_steps: usize,
-    /// Tone burst frequency (Hz).
-    #[arg(long, default_value_t = 1000.0)]
+    #[arg(long, value_name = "FOLDER", default_value = "breakdown-onset")]
+    output: PathBuf,
+    #[arg(long, hide = true)]
+    out: Option<PathBuf>,
+    /// Gain pot steps from 0.1 to 1 (2 .. 64).
+    #[arg(long, default_value_t = 12, allow_negative_numbers = true)]
+    gain_steps: i64,
+    /// Input volts steps: peak volts of the tone bursts at the jack, log-spaced from 0.02 to 2 V (2 .. 64;
+    /// these are volts at the input, not the level pot).
+    #[arg(long, default_value_t = 16, allow_negative_numbers = true)]
+    input_volts_steps: i64,
+    #[arg(long, hide = true, allow_negative_numbers = true)]
+    level_steps: Option<i64>,
+    /// Tone burst frequency (Hz), 20 .. 5000.
+    #[arg(long, default_value_t = 1000.0, allow_negative_numbers = true)]
     tone_hz: f64,
 }
 
 #[derive(clap::Args)]
 pub struct SuggestArgs {
-    /// Circuit file (TOML); the built-in reference circuit without it.
-    #[arg(long)]
+    /// Circuit file (TOML); the built-in preamp without it.
+    #[arg(long, value_name = "FILE")]
     circuit: Option<PathBuf>,
-    /// Setting name=value (gain, level); the position is replaced by the candidates.
+    /// Setting name=value (gain, level, treble, middle, bass); the switch position is replaced by the candidates.
     #[arg(long = "set", value_name = "NAME=VALUE")]
     set: Vec<String>,
-    /// Goal: clamp=+V,-V (peak clamp-node volts), share=FRACTION (time clamped) or before-valve.
-    #[arg(long)]
+    /// Goal: clamp-level=+V,-V (the clamp node's peak volts, each sign naming its side; clamp-level=V for both),
+    /// share=FRACTION (of time clamped) or before-valve.
+    #[arg(long, allow_hyphen_values = true)]
     goal: String,
-    /// A recorded DI (WAV) to judge on, scaled by the circuit's [drive] volts_at_full_scale.
-    #[arg(long, conflicts_with = "input_volts")]
+    /// A recorded DI (WAV) to judge on, in volts at the jack by the input calibration.
+    #[arg(long, value_name = "DI.wav", conflicts_with = "input_volts")]
+    input: Option<PathBuf>,
+    #[arg(long, hide = true, conflicts_with_all = ["input", "input_volts"])]
     di: Option<PathBuf>,
     /// Or a steady tone of this many peak volts at the jack.
-    #[arg(long)]
+    #[arg(long, value_name = "V", allow_negative_numbers = true)]
     input_volts: Option<f64>,
     #[command(flatten)]
+    calibration: CalibrationArgs,
+    #[command(flatten)]
     ratings: RatingArgs,
-    /// Oversampling factor of the renders (1, 2, 4, 8, 16).
-    #[arg(long, default_value = "2")]
+    #[arg(long, default_value = "2", help = ANALYSIS_QUALITY_HELP)]
     quality: String,
-    /// Tone frequency (Hz) for --input-volts and the onset checks.
-    #[arg(long, default_value_t = 1000.0)]
+    /// Tone frequency (Hz) for --input-volts and the onset checks, 20 .. 5000.
+    #[arg(long, default_value_t = 1000.0, allow_negative_numbers = true)]
     tone_hz: f64,
-    /// Use at most this many seconds of the DI.
-    #[arg(long, default_value_t = 20.0)]
+    /// Use at most this many seconds of the DI (above 0, up to 600).
+    #[arg(long, default_value_t = 20.0, allow_negative_numbers = true)]
     seconds: f64,
 }
 
 #[derive(clap::Args)]
 pub struct PartsArgs {
-    /// Circuit file (TOML); the built-in reference circuit without it.
-    #[arg(long)]
+    /// Circuit file (TOML); the built-in preamp without it.
+    #[arg(long, value_name = "FILE")]
     circuit: Option<PathBuf>,
-    /// Setting name=value; position=N lists only that switch position (all positions with parts otherwise).
+    /// Setting name=value; position=N (counted from 0) lists only that switch position (all positions with
+    /// parts otherwise).
     #[arg(long = "set", value_name = "NAME=VALUE")]
     set: Vec<String>,
     /// Worst-case input: peak volts of a steady tone at the jack.
-    #[arg(long, default_value_t = 2.0)]
+    #[arg(
+        long,
+        value_name = "V",
+        default_value_t = 2.0,
+        allow_negative_numbers = true
+    )]
     input_volts: f64,
-    /// Worst-case gain pot rotation.
-    #[arg(long, default_value_t = 1.0)]
+    /// Worst-case gain pot rotation, 0 .. 1.
+    #[arg(long, default_value_t = 1.0, allow_negative_numbers = true)]
     worst_gain: f64,
     #[command(flatten)]
     ratings: RatingArgs,
-    /// Oversampling factor of the renders (1, 2, 4, 8, 16).
-    #[arg(long, default_value = "2")]
+    #[arg(long, default_value = "2", help = ANALYSIS_QUALITY_HELP)]
     quality: String,
-    /// Worst-case tone frequency (Hz).
-    #[arg(long, default_value_t = 1000.0)]
+    /// Worst-case tone frequency (Hz), 20 .. 5000.
+    #[arg(long, default_value_t = 1000.0, allow_negative_numbers = true)]
     tone_hz: f64,
     /// Output folder for parts.txt and parts.csv.
-    #[arg(long, default_value = "breakdown-parts")]
-    out: PathBuf,
+    #[arg(long, value_name = "FOLDER", default_value = "breakdown-parts")]
+    output: PathBuf,
+    #[arg(long, hide = true)]
+    out: Option<PathBuf>,
+}
+
+/// The output folder: --output, or the old --out (with a note).
+fn output_folder(output: &std::path::Path, out: &Option<PathBuf>) -> PathBuf {
+    pick(None, out.as_ref(), "--out", "--output").unwrap_or_else(|| output.to_path_buf())
+}
+
+/// Create the output folder; refuse one that is an input file.
+fn prepare_folder(folder: &std::path::Path, circuit: Option<&PathBuf>) -> Result<(), String> {
+    if let Some(c) = circuit {
+        crate::files::refuse_overwriting_inputs("--output", folder, &[("circuit", c.as_path())])?;
+    }
+    if folder.is_file() {
+        return Err(format!(
+            "--output '{}' is a file; give a folder",
+            folder.display()
+        ));
+    }
+    std::fs::create_dir_all(folder)
+        .map_err(|e| format!("cannot create the folder '{}': {e}", folder.display()))
 }
 
 fn rig_from(
@@ -112,28 +155,41 @@ fn rig_from(
 }
 
 fn write(path: &std::path::Path, text: &str) -> Result<(), String> {
-    std::fs::write(path, text).map_err(|e| format!("cannot write {}: {e}", path.display()))
+    crate::files::write_text(path, text)
 }
 
 pub fn onset(a: OnsetArgs) -> Result<(), String> {
     let rig = rig_from(a.circuit.as_deref(), &a.set, &a.quality)?;
-    if !(2..=64).contains(&a.gain_steps) || !(2..=64).contains(&a.level_steps) {
-        return Err("--gain-steps and --level-steps must each be 2 .. 64".into());
+    let volts_steps = pick(
+        None,
+        a.level_steps.as_ref(),
+        "--level-steps",
+        "--input-volts-steps",
+    )
+    .unwrap_or(a.input_volts_steps);
+    for (name, v) in [
+        ("--gain-steps", a.gain_steps),
+        ("--input-volts-steps", volts_steps),
+    ] {
+        if !(2..=MAX_STEPS).contains(&v) {
+            return Err(format!(
+                "{name} {v}: give 2 .. {MAX_STEPS} steps (the map renders one burst per gain step and input step)"
+            ));
+        }
     }
-    if !(a.tone_hz.is_finite() && (20.0..=5000.0).contains(&a.tone_hz)) {
-        return Err(format!("--tone-hz {}: choose 20 .. 5000 Hz", a.tone_hz));
-    }
-    std::fs::create_dir_all(&a.out)
-        .map_err(|e| format!("cannot create {}: {e}", a.out.display()))?;
-    let sweep = onset::Sweep::standard(a.gain_steps, a.level_steps, a.tone_hz);
+    check_tone(a.tone_hz)?;
+    let folder = output_folder(&a.output, &a.out);
+    prepare_folder(&folder, a.circuit.as_ref())?;
+    let a_out = folder;
+    let sweep = onset::Sweep::standard(a.gain_steps as usize, volts_steps as usize, a.tone_hz);
     let map = onset::map(&rig, &sweep)?;
     let title = format!(
         "First element to limit: position {} ({})",
         rig.settings.position,
         rig.position_name()
     );
-    write(&a.out.join("onset.csv"), &onset::to_csv(&map))?;
-    write(&a.out.join("onset.svg"), &onset::to_svg(&map, &title)?)?;
+    write(&a_out.join("onset.csv"), &onset::to_csv(&map))?;
+    write(&a_out.join("onset.svg"), &onset::to_svg(&map, &title)?)?;
     let onsets = onset::onsets_at_gain(&rig, a.tone_hz, 100.0)?;
     println!(
         "{} at gain {:.2}, {:.0} Hz tone bursts:",
@@ -157,8 +213,8 @@ pub fn onset(a: OnsetArgs) -> Result<(), String> {
     }
     println!(
         "wrote {} and {}",
-        a.out.join("onset.csv").display(),
-        a.out.join("onset.svg").display()
+        a_out.join("onset.csv").display(),
+        a_out.join("onset.svg").display()
     );
     println!("{SAFETY}");
     Ok(())
@@ -169,11 +225,16 @@ pub struct RatingArgs {
     /// Part family the ratings are judged against: 1n47xxa (1 W glass) or 1n52xxb (1/2 W glass).
     #[arg(long, default_value = "1n47xxa")]
     pub family: String,
-    /// Power rating to judge the parts against instead of the family's (W).
-    #[arg(long)]
+    /// Power rating to judge the parts against instead of the family's (W), above 0 up to 100.
+    #[arg(long, value_name = "W", allow_negative_numbers = true)]
     pub rating_watts: Option<f64>,
-    /// Coupling capacitor voltage rating (V).
-    #[arg(long, default_value_t = 400.0)]
+    /// Coupling capacitor voltage rating (V), above 0 up to 10000.
+    #[arg(
+        long,
+        value_name = "V",
+        default_value_t = 400.0,
+        allow_negative_numbers = true
+    )]
     pub cap_rating_volts: f64,
 }
 
@@ -191,7 +252,8 @@ fn rating_source(family: &str, watts: Option<f64>) -> Result<ratings::RatingSour
         None => Ok(ratings::RatingSource::Family(f)),
         Some(w) if w.is_finite() && w > 0.0 && w <= 100.0 => Ok(ratings::RatingSource::Watts(w)),
         Some(w) => Err(format!(
-            "--rating-watts {w}: give a power rating above 0 W (up to 100 W)"
+            "--rating-watts {}: a power rating must be above 0 W, up to 100 W (a part's rated dissipation)",
+            breakdown_dsp::units::significant(w, 4)
         )),
     }
 }
@@ -199,7 +261,9 @@ fn rating_source(family: &str, watts: Option<f64>) -> Result<ratings::RatingSour
 fn check_volts(name: &str, v: f64, high: f64) -> Result<(), String> {
     if !(v.is_finite() && v > 0.0 && v <= high) {
         return Err(format!(
-            "{name} {v}: give a value above 0 and at most {high}"
+            "{name} {}: give a value above 0, at most {}",
+            breakdown_dsp::units::significant(v, 4),
+            breakdown_dsp::units::significant(high, 4)
         ));
     }
     Ok(())
@@ -207,7 +271,10 @@ fn check_volts(name: &str, v: f64, high: f64) -> Result<(), String> {
 
 fn check_tone(hz: f64) -> Result<(), String> {
     if !(hz.is_finite() && (20.0..=5000.0).contains(&hz)) {
-        return Err(format!("--tone-hz {hz}: choose 20 .. 5000 Hz"));
+        return Err(format!(
+            "--tone-hz {}: choose 20 .. 5000 Hz (the guitar's fundamentals and the first harmonics)",
+            breakdown_dsp::units::significant(hz, 4)
+        ));
     }
     Ok(())
 }
@@ -218,18 +285,25 @@ pub fn di_stimulus(
     volts_at_full_scale: f64,
     seconds: f64,
 ) -> Result<common::Stimulus, String> {
-    let audio = crate::audio::read_wav(path)?;
+    let shown = path.display().to_string();
+    let audio = crate::audio::read_input(
+        path,
+        &shown,
+        Some(volts_at_full_scale),
+        crate::audio::Silence::Refuse(
+            "a silent DI never reaches the Zeners: nothing to suggest parts for",
+        ),
+    )?;
     let frames = audio.frames();
-    if frames == 0 || audio.channels.is_empty() {
-        return Err(format!("{}: the file holds no audio", path.display()));
-    }
-    let rate = audio.rate as f64;
-    if !(22_050.0..=384_000.0).contains(&rate) {
+    if !(crate::render::MIN_RATE..=crate::render::MAX_RATE).contains(&audio.rate) {
         return Err(format!(
-            "{}: sample rate {rate} Hz is outside 22050 .. 384000 Hz",
-            path.display()
+            "'{shown}' is at {} Hz; Breakdown renders {} .. {} Hz",
+            audio.rate,
+            crate::render::MIN_RATE,
+            crate::render::MAX_RATE
         ));
     }
+    let rate = audio.rate as f64;
     let keep = frames.min((seconds * rate) as usize).max(1);
     let scale = volts_at_full_scale / audio.channels.len() as f64;
     let volts = (0..keep)
@@ -239,22 +313,26 @@ pub fn di_stimulus(
 }
 
 pub fn suggest(a: SuggestArgs) -> Result<(), String> {
-    let rig = rig_from(a.circuit.as_deref(), &a.set, &a.quality)?;
+    let mut rig = rig_from(a.circuit.as_deref(), &a.set, &a.quality)?;
+    let calibration = a
+        .calibration
+        .apply(&mut rig.circuit, &circuit_source(a.circuit.as_ref()))?;
     let goal = suggest::parse_goal(&a.goal)?;
     let family = ratings::family_by_name(&a.ratings.family)?;
     let source = a.ratings.source()?;
     check_tone(a.tone_hz)?;
-    let stimulus = match (&a.di, a.input_volts) {
+    let di = pick(a.input.as_ref(), a.di.as_ref(), "--di", "--input");
+    let stimulus = match (&di, a.input_volts) {
         (Some(p), _) => {
-            check_volts("--seconds", a.seconds, 3600.0)?;
-            di_stimulus(p, rig.circuit.input.volts_at_full_scale, a.seconds)?
+            check_volts("--seconds", a.seconds, MAX_SECONDS)?;
+            di_stimulus(p, calibration.volts_at_full_scale, a.seconds)?
         }
         (None, Some(v)) => {
             check_volts("--input-volts", v, breakdown_dsp::engine::INPUT_LIMIT_VOLTS)?;
             common::Stimulus::sustained(v, a.tone_hz)
         }
         (None, None) => {
-            return Err("give --di FILE or --input-volts V (peak volts at the jack)".into())
+            return Err("give --input DI.wav or --input-volts V (peak volts at the jack)".into())
         }
     };
     let s = suggest::suggest(&rig, &stimulus, family, goal, a.tone_hz)?;
@@ -263,8 +341,12 @@ pub fn suggest(a: SuggestArgs) -> Result<(), String> {
         family.name,
         rig.settings.gain,
         rig.settings.level,
-        match (&a.di, a.input_volts) {
-            (Some(p), _) => format!("DI {}", p.display()),
+        match (&di, a.input_volts) {
+            (Some(p), _) => format!(
+                "DI '{}', calibration {}",
+                p.display(),
+                calibration.describe()
+            ),
             (_, Some(v)) => format!("{v} V peak {:.0} Hz tone at the jack", a.tone_hz),
             _ => String::new(),
         }
@@ -320,15 +402,15 @@ pub fn parts(a: PartsArgs) -> Result<(), String> {
     let (lines, _) =
         partslist::parts_list(&rig, &positions, worst, source, a.ratings.cap_rating_volts)?;
     let text = format!("{}\n{SAFETY}\n", partslist::to_text(&lines, worst));
-    std::fs::create_dir_all(&a.out)
-        .map_err(|e| format!("cannot create {}: {e}", a.out.display()))?;
-    write(&a.out.join("parts.txt"), &text)?;
-    write(&a.out.join("parts.csv"), &partslist::to_csv(&lines))?;
+    let out = output_folder(&a.output, &a.out);
+    prepare_folder(&out, a.circuit.as_ref())?;
+    write(&out.join("parts.txt"), &text)?;
+    write(&out.join("parts.csv"), &partslist::to_csv(&lines))?;
     print!("{text}");
     println!(
         "wrote {} and {}",
-        a.out.join("parts.txt").display(),
-        a.out.join("parts.csv").display()
+        out.join("parts.txt").display(),
+        out.join("parts.csv").display()
     );
     Ok(())
 }

@@ -2,7 +2,7 @@
 //!
 //! Each cell renders a short tone burst and reads the engine's meters over its steady part. An element
 //! "limits" when it takes away a noticeable part of the small-signal gain at the signal's peak. The criteria,
-//! each from the device equations the model uses (BRIEF section 4):
+//! each from the device equations the model uses (docs/model.md section 4):
 //!
 //! * **Zener clamp**: the pair carries more than [`CLAMPED_CURRENT`] (10 uA) at any instant, the same test the
 //!   engine's "share of time clamped" meter uses. Physically: a Zener in its knee has an incremental
@@ -18,7 +18,7 @@
 //!   Koren law Ip ~ E1^ex the transconductance scales as Ip^((ex-1)/ex); at 2% of idle it is about a third of
 //!   its idle value (12AX7, ex = 1.4) and collapses to zero within a fraction of a volt more grid drive.
 //! * **Cathode follower, cut-off**: the follower's plate current falls below 2% of its idle value: it can no
-//!   longer sink the load current on the down-swing (BRIEF section 2), the same 2% edge as above.
+//!   longer sink the load current on the down-swing (docs/model.md section 2), the same 2% edge as above.
 //!
 //! Which element limits "first" in a cell: of the elements active in that cell, the one that became active
 //! at the lowest input level at that gain (scanning the row from the quietest cell up); ties in the same cell
@@ -27,7 +27,7 @@
 use super::common::{checked, lin_space, log_space, parallel, run_with, Outcome, Rig, Stimulus};
 use breakdown_dsp::devices::Triode;
 use breakdown_dsp::engine::CLAMPED_CURRENT;
-use breakdown_dsp::StageProbe;
+use breakdown_dsp::Readout;
 
 /// Fraction of idle plate current below which a valve counts as cut off.
 pub const CUTOFF_FRACTION: f64 = 0.02;
@@ -113,14 +113,15 @@ pub struct Criteria {
 }
 
 impl Criteria {
-    pub fn new(grid_stopper: f64, idle: &StageProbe) -> Criteria {
+    pub fn new(grid_stopper: f64, idle: &Readout) -> Criteria {
         let (at_threshold, _) = grid_current_threshold(grid_stopper);
-        let (at_idle, _) = Triode::grid_current(idle.gain_grid_volts - idle.gain_cathode_volts);
+        let (at_idle, _) =
+            Triode::grid_current(idle.gain_stage().grid_volts - idle.gain_stage().cathode_volts);
         Criteria {
             zener_current: CLAMPED_CURRENT,
-            gain_grid_current: idle.gain_grid_current + (at_threshold - at_idle).max(0.0),
-            gain_cutoff_current: CUTOFF_FRACTION * idle.gain_plate_current,
-            follower_cutoff_current: CUTOFF_FRACTION * idle.follower_plate_current,
+            gain_grid_current: idle.gain_stage().grid_current + (at_threshold - at_idle).max(0.0),
+            gain_cutoff_current: CUTOFF_FRACTION * idle.gain_stage().plate_current,
+            follower_cutoff_current: CUTOFF_FRACTION * idle.follower().plate_current,
         }
     }
 }
@@ -139,9 +140,9 @@ impl Flags {
         let m = &outcome.meters;
         Flags {
             zener: m.zener_peak_current > criteria.zener_current,
-            gain_grid: m.gain_grid_current_peak > criteria.gain_grid_current,
-            gain_cutoff: m.gain_plate_current_min < criteria.gain_cutoff_current,
-            follower_cutoff: m.follower_plate_current_min < criteria.follower_cutoff_current,
+            gain_grid: m.gain_stage().grid_current_peak > criteria.gain_grid_current,
+            gain_cutoff: m.gain_stage().plate_current_min < criteria.gain_cutoff_current,
+            follower_cutoff: m.follower().plate_current_min < criteria.follower_cutoff_current,
         }
     }
     pub fn has(&self, l: Limiter) -> bool {
@@ -219,7 +220,7 @@ pub fn criteria_for(rig: &Rig) -> Result<Criteria, String> {
     let engine = rig.engine()?;
     Ok(Criteria::new(
         rig.circuit.gain_stage.grid_stopper,
-        engine.stage().probe(),
+        &engine.readout(),
     ))
 }
 
@@ -248,9 +249,9 @@ fn cell_of(gain: f64, input_volts: f64, o: &Outcome, c: &Criteria) -> Cell {
         clamp_peak_negative: m.clamp_peak_negative,
         share_clamped: m.share_clamped(),
         zener_peak_current: m.zener_peak_current,
-        gain_grid_current_peak: m.gain_grid_current_peak,
-        gain_plate_current_min: m.gain_plate_current_min,
-        follower_plate_current_min: m.follower_plate_current_min,
+        gain_grid_current_peak: m.gain_stage().grid_current_peak,
+        gain_plate_current_min: m.gain_stage().plate_current_min,
+        follower_plate_current_min: m.follower().plate_current_min,
     }
 }
 

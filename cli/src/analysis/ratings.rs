@@ -1,8 +1,9 @@
 //! Ratings: current and dissipation of each Zener against its family's power rating, the coupling
 //! capacitor's DC voltage against its rating, and the spread of clamp levels over the parts' tolerance.
 //!
-//! Margins (common practice, no single source): a part is "ok" when its rating is at least twice the average
-//! dissipation it sees, "thin" between once and twice, "over" below once. The 2x covers the derating of
+//! Margins: the margin of a part is its rating over its load, printed as "12.0x". Its state (common practice,
+//! no single source; defined here once for the command line and the report): "ok" when the rating is at least
+//! [`THIN_BELOW`] times the average dissipation it sees, "thin" below that, "over the rating" below 1x. The 2x covers the derating of
 //! glass Zener ratings above about 50 C lead temperature and a hot chassis. Average (not peak) power sets
 //! the junction temperature here: a glass Zener's thermal time constant (around a second) is far longer than
 //! an audio cycle, so the peak figure is shown for information only.
@@ -10,7 +11,29 @@
 use super::common::{run, Outcome, Rig, Stimulus};
 use breakdown_dsp::circuit::ZenerSpec;
 use breakdown_dsp::parts::{Family, FAMILY_1N47XXA, FAMILY_1N52XXB};
-use breakdown_dsp::{Circuit, Meters, StageProbe};
+use breakdown_dsp::{Circuit, Meters, Readout};
+
+/// A margin (rating / load) below this is "thin" (common practice: it covers the derating of glass Zeners
+/// above about 50 C lead temperature and a hot chassis).
+pub const THIN_BELOW: f64 = 2.0;
+
+/// "12.0x"; "no load" when nothing flows; ">1000x" above a thousand.
+pub fn margin_text(margin: f64) -> String {
+    if !margin.is_finite() {
+        "no load".to_string()
+    } else if margin > 1000.0 {
+        ">1000x".to_string()
+    } else {
+        format!("{margin:.1}x")
+    }
+}
+
+/// The margin states in one sentence, for the tables' headings.
+pub fn margin_legend() -> String {
+    format!(
+        "margin = rating / load: ok at {THIN_BELOW}x or more, thin below {THIN_BELOW}x, over the rating below 1x (common practice)"
+    )
+}
 
 /// Margin verdict.
 #[derive(Clone, Copy, Debug, PartialEq, Eq)]
@@ -21,9 +44,9 @@ pub enum Verdict {
 }
 
 impl Verdict {
-    /// From a margin (rating / load): >= 2 ok, 1..2 thin, < 1 over (common practice).
+    /// From a margin (rating / load): ok at THIN_BELOW or more, thin below, over the rating below 1.
     pub fn from_margin(margin: f64) -> Verdict {
-        if margin >= 2.0 {
+        if margin >= THIN_BELOW {
             Verdict::Ok
         } else if margin >= 1.0 {
             Verdict::Thin
@@ -35,7 +58,7 @@ impl Verdict {
         match self {
             Verdict::Ok => "ok",
             Verdict::Thin => "thin",
-            Verdict::Over => "over",
+            Verdict::Over => "over the rating",
         }
     }
 }
@@ -112,8 +135,8 @@ pub struct CapRating {
 impl CapRating {
     /// Verdict: over below the DC voltage; thin below 1.5x DC or below B+ (warm-up: the follower can conduct
     /// with the gain valve still cold, its cathode rising toward B+; common practice); ok otherwise.
-    pub fn new(farads: f64, idle: &StageProbe, supply_volts: f64, rating_volts: f64) -> CapRating {
-        let dc_volts = (idle.follower_cathode_volts - idle.clamp_volts).abs();
+    pub fn new(farads: f64, idle: &Readout, supply_volts: f64, rating_volts: f64) -> CapRating {
+        let dc_volts = (idle.follower().cathode_volts - idle.clamp_volts).abs();
         let verdict = if rating_volts < dc_volts {
             Verdict::Over
         } else if rating_volts < 1.5 * dc_volts || rating_volts < supply_volts {
@@ -143,10 +166,10 @@ pub struct Ratings {
 }
 
 /// Ratings from the meters of any render (the report code calls this with its own engine's meters):
-/// `idle` is the engine's operating point (`engine.stage().probe()` right after `Engine::new` or `reset`).
+/// `idle` is the engine's operating point (`engine.readout()` right after `Engine::new` or `reset`).
 pub fn ratings_from_meters(
     meters: &Meters,
-    idle: &StageProbe,
+    idle: &Readout,
     circuit: &Circuit,
     position: usize,
     source: RatingSource,
@@ -322,12 +345,13 @@ pub fn tolerance_spread(rig: &Rig, stimulus: &Stimulus, tolerance: f64) -> Resul
 pub fn ratings_text(r: &Ratings) -> String {
     let mut s = String::new();
     s.push_str(&format!(
-        "Zener load over {:.2} s (average power sets the temperature; margins: ok >= 2x, thin 1-2x, over < 1x, common practice):\n",
-        r.seconds
+        "Zener load over {:.2} s (average power sets the temperature; {}):\n",
+        r.seconds,
+        margin_legend()
     ));
     for p in &r.parts {
         s.push_str(&format!(
-            "  {:<8} {:>5.1} V {:<8} peak {:>7.3} mA  rms {:>7.3} mA  peak {:>7.1} mW  average {:>7.2} mW  rating {} ({})  margin {}  {}\n",
+            "  {:<8} Vz {:>5.1} V {:<8} peak {:>7.3} mA  rms {:>7.3} mA  peak {:>7.1} mW  average {:>7.2} mW  rating {} ({})  margin {}  {}\n",
             p.role,
             p.volts,
             p.part_number.unwrap_or("-"),
@@ -337,12 +361,10 @@ pub fn ratings_text(r: &Ratings) -> String {
             p.average_watts * 1e3,
             format_watts(p.rating_watts),
             p.rating_source,
-            if !p.margin.is_finite() || p.average_watts < 1e-6 {
-                "no load".to_string()
-            } else if p.margin > 1000.0 {
-                ">1000x".to_string()
+            if p.average_watts < 1e-6 {
+                margin_text(f64::INFINITY)
             } else {
-                format!("{:.1}x", p.margin)
+                margin_text(p.margin)
             },
             p.verdict.label()
         ));
@@ -351,8 +373,8 @@ pub fn ratings_text(r: &Ratings) -> String {
         s.push_str("  no Zeners at this position\n");
     }
     s.push_str(&format!(
-        "Coupling capacitor {:.0} nF: {:.1} V DC at the operating point, up to B+ {:.0} V while the valves warm up; rating {:.0} V: {}\n",
-        r.cap.farads * 1e9,
+        "Coupling capacitor {}: {:.1} V DC at the operating point, up to B+ {:.0} V while the valves warm up; rating {:.0} V: {}\n",
+        breakdown_dsp::units::si(r.cap.farads, "F"),
         r.cap.dc_volts,
         r.cap.supply_volts,
         r.cap.rating_volts,
@@ -366,11 +388,7 @@ pub fn ratings_text(r: &Ratings) -> String {
 }
 
 fn format_watts(w: f64) -> String {
-    if w >= 1.0 {
-        format!("{w} W")
-    } else {
-        format!("{:.0} mW", w * 1e3)
-    }
+    breakdown_dsp::units::si(w, "W")
 }
 
 /// Plain-text spread line.
@@ -390,7 +408,7 @@ pub fn spread_text(s: &Spread) -> String {
         })
         .collect();
     format!(
-        "Part tolerance +/-{:.0}% (corners of both Zener voltages): positive clamp {:.2} .. {:.2} V, negative clamp -{:.2} .. -{:.2} V (nominal +{:.2} / -{:.2} V)\n  corners (+ part/- part): {}",
+        "Part tolerance +/-{:.0}% (corners of both parts' Vz): clamp level + {:.2} .. {:.2} V, clamp level - -{:.2} .. -{:.2} V (nominal +{:.2} / -{:.2} V)\n  corners (+ part/- part): {}",
         s.tolerance * 100.0,
         p0,
         p1,

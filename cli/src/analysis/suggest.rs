@@ -3,15 +3,17 @@
 //!
 //! Goals: a clamp level per polarity (peak clamp-node volts), a share of time clamped, or "clamp before the
 //! valve clips" (the pair starts to conduct at a lower input level than any valve criterion of
-//! [`super::onset`] fires, with the pair in place). Loudness change is the RMS level of the wiper voltage over
-//! the measured window against the same render with the clamp off, in dB (unweighted RMS).
+//! [`super::onset`] fires, with the pair in place). Loudness change is the integrated loudness (LUFS, EBU R128 via
+//! ebur128, as the rest of the command line) of the wiper voltage over the measured window against the same
+//! render with the clamp off, in LU; "silent" when either render is too quiet to measure.
 
-use super::common::{parallel, run, Outcome, Rig, Stimulus};
+use super::common::{parallel, run, run_with_loudness, Outcome, Rig, Stimulus};
 use super::onset::{onset_level, Flags};
 use breakdown_dsp::circuit::ZenerSpec;
 use breakdown_dsp::devices::Zener;
 use breakdown_dsp::engine::CLAMPED_CURRENT;
 use breakdown_dsp::parts::{nearest_e24, Family, FamilyRow, FAMILY_1N47XXA};
+use breakdown_dsp::units::clip;
 use breakdown_dsp::Placement;
 
 /// What the builder asks for.
@@ -25,44 +27,78 @@ pub enum Goal {
     BeforeValve,
 }
 
-/// Parse `clamp=+21,-8`, `clamp=20` (symmetric), `share=0.2` / `share=20%`, or `before-valve`.
+const GOAL_FORMS: &str =
+    "clamp-level=+V,-V (the clamp node's peak volts, e.g. clamp-level=+12,-6), clamp-level=V (both sides), \
+share=FRACTION or share=PERCENT% (of time clamped), or before-valve";
+
+/// A clamp level pair: each value's sign names its side ("+12,-6" or "-6,+12"); one unsigned value is both.
+fn parse_levels(goal: &str, value: &str) -> Result<(f64, f64), String> {
+    let ambiguous = || {
+        format!(
+            "--goal {goal}: ambiguous; write the positive level with + and the negative with -, e.g. \
+             clamp-level=+12,-6 (or one unsigned level for both sides, clamp-level=12)"
+        )
+    };
+    let token = |t: &str| -> Result<(Option<char>, f64), String> {
+        let t = t.trim();
+        let (sign, digits) = match t.chars().next() {
+            Some(c @ ('+' | '-')) => (Some(c), &t[1..]),
+            _ => (None, t),
+        };
+        let v = digits
+            .trim()
+            .parse::<f64>()
+            .map_err(|_| format!("--goal {goal}: '{}' is not a level in volts", clip(t, 20)))?;
+        if !(v.is_finite() && v > 0.0 && v <= 1000.0) {
+            return Err(format!(
+                "--goal {goal}: a clamp level must be above 0 V, up to 1000 V (the clamp node's peak volts)"
+            ));
+        }
+        Ok((sign, v))
+    };
+    let parts: Vec<&str> = value.split(',').collect();
+    match parts.as_slice() {
+        [one] => match token(one)? {
+            (None, v) => Ok((v, v)),
+            (Some(_), _) => Err(format!(
+                "--goal {goal}: one signed level names one side only; give both, e.g. clamp-level=+12,-6, or \
+                 one unsigned level for both sides"
+            )),
+        },
+        [a, b] => match (token(a)?, token(b)?) {
+            ((Some('+'), p), (Some('-'), n)) | ((Some('-'), n), (Some('+'), p)) => Ok((p, n)),
+            _ => Err(ambiguous()),
+        },
+        _ => Err(format!("--goal {goal}: give one level or two ({GOAL_FORMS})")),
+    }
+}
+
+/// Parse `clamp-level=+21,-8` (each sign names its side), `clamp-level=20` (both), `share=0.2` / `share=20%`,
+/// or `before-valve`. `clamp=` is the old name of `clamp-level=` (still read, with a note).
 pub fn parse_goal(text: &str) -> Result<Goal, String> {
     let t = text.trim();
+    let goal = clip(t, 40);
     if t == "before-valve" {
         return Ok(Goal::BeforeValve);
     }
-    let (key, value) = t.split_once('=').ok_or_else(|| {
-        format!("--goal {t}: expected clamp=+V,-V, clamp=V, share=FRACTION or before-valve")
-    })?;
-    let number = |s: &str| -> Result<f64, String> {
-        s.trim()
-            .trim_start_matches('+')
-            .parse::<f64>()
-            .map_err(|_| format!("--goal {t}: '{s}' is not a number"))
-    };
+    let (key, value) = t
+        .split_once('=')
+        .ok_or_else(|| format!("--goal {goal}: expected {GOAL_FORMS}"))?;
     match key.trim() {
-        "clamp" => {
-            let parts: Vec<&str> = value.split(',').collect();
-            let (p, n) = match parts.as_slice() {
-                [one] => {
-                    let v = number(one)?.abs();
-                    (v, v)
-                }
-                [a, b] => (number(a)?.abs(), number(b)?.abs()),
-                _ => return Err(format!("--goal {t}: give one level or two (clamp=+21,-8)")),
-            };
-            for v in [p, n] {
-                if !(v.is_finite() && v > 0.0) {
-                    return Err(format!("--goal {t}: clamp levels must be above 0 V"));
-                }
+        "clamp-level" | "clamp" => {
+            if key.trim() == "clamp" {
+                crate::options::renamed("--goal clamp=", "--goal clamp-level=");
             }
-            Ok(Goal::Clamp {
-                positive: p,
-                negative: n,
-            })
+            let (positive, negative) = parse_levels(&goal, value)?;
+            Ok(Goal::Clamp { positive, negative })
         }
         "share" => {
             let v = value.trim();
+            let number = |s: &str| {
+                s.trim()
+                    .parse::<f64>()
+                    .map_err(|_| format!("--goal {goal}: '{}' is not a number", clip(s, 20)))
+            };
             let share = if let Some(pct) = v.strip_suffix('%') {
                 number(pct)? / 100.0
             } else {
@@ -70,13 +106,14 @@ pub fn parse_goal(text: &str) -> Result<Goal, String> {
             };
             if !(share > 0.0 && share < 1.0) {
                 return Err(format!(
-                    "--goal {t}: a share of time clamped lies between 0 and 1 (or 0% and 100%), exclusive"
+                    "--goal {goal}: a share of time clamped lies between 0 and 1 (or 0% and 100%), exclusive"
                 ));
             }
             Ok(Goal::Share(share))
         }
         other => Err(format!(
-            "--goal {other}=...: unknown goal (known: clamp=+V,-V, share=FRACTION, before-valve)"
+            "--goal {}=...: unknown goal (known: {GOAL_FORMS})",
+            clip(other, 20)
         )),
     }
 }
@@ -141,8 +178,8 @@ pub struct Candidate {
     pub peaks: (f64, f64),
     /// Share of time clamped (engine meter, 0..1).
     pub share: f64,
-    /// Wiper RMS against the clamp-off render (dB).
-    pub loudness_db: f64,
+    /// Against the clamp-off render (LU); None when either is silent (no ratio of a silent measurement).
+    pub loudness_change: Option<f64>,
     /// Miss against the goal: volts (clamp), share points as a fraction (share) or -margin dB (before-valve).
     pub miss: f64,
     pub meets: bool,
@@ -183,36 +220,41 @@ fn source_resistance(rig: &Rig) -> f64 {
 }
 
 /// Clamp level of `part` reverse-biased in series with `part` forward at `current` (A), from the device
-/// equation (BRIEF section 4): the estimate before rendering.
+/// equation (docs/model.md section 4): the estimate before rendering.
 pub fn threshold(part: &Part, current: f64) -> f64 {
     let z: Zener = part.spec.model();
     -z.voltage_at(-current) + z.voltage_at(current)
 }
 
+/// The renders of `pairs` with the wiper's loudness, in order.
 fn evaluate(
     rig: &Rig,
     stimulus: &Stimulus,
-    off: &Outcome,
     pairs: Vec<(Part, Part)>,
-) -> Result<Vec<(Part, Part, Outcome)>, String> {
+) -> Result<Vec<(Part, Part, Outcome, f64)>, String> {
     let outs = parallel(pairs.clone(), |(p, n)| {
-        run(&rig.with_pair(Some(p.spec), Some(n.spec)), stimulus)
+        run_with_loudness(&rig.with_pair(Some(p.spec), Some(n.spec)), stimulus)
     });
-    let _ = off;
     pairs
         .into_iter()
         .zip(outs)
-        .map(|((p, n), o)| o.map(|o| (p, n, o)))
+        .map(|((p, n), o)| o.map(|(o, l)| (p, n, o, l)))
         .collect()
 }
 
-fn candidate(p: Part, n: Part, o: &Outcome, off: &Outcome) -> Candidate {
+/// The clamp-off render and its loudness, the reference every candidate is heard against.
+pub struct Reference {
+    pub outcome: Outcome,
+    pub lufs: f64,
+}
+
+fn candidate(p: Part, n: Part, o: &Outcome, lufs: f64, off: &Reference) -> Candidate {
     Candidate {
         positive: p,
         negative: n,
         peaks: o.clamp_peaks(),
         share: o.meters.share_clamped(),
-        loudness_db: 20.0 * (o.wiper_rms.max(1e-12) / off.wiper_rms.max(1e-12)).log10(),
+        loudness_change: (lufs.is_finite() && off.lufs.is_finite()).then_some(lufs - off.lufs),
         miss: 0.0,
         meets: false,
         note: String::new(),
@@ -245,8 +287,9 @@ pub fn suggest(
     if parts.is_empty() {
         return Err(format!("family {} has no E24 rows", family.name));
     }
-    let off = run(&rig.off(), stimulus)?;
-    let off_peaks = off.clamp_peaks();
+    let (outcome, lufs) = run_with_loudness(&rig.off(), stimulus)?;
+    let off = Reference { outcome, lufs };
+    let off_peaks = off.outcome.clamp_peaks();
     let mut notes = Vec::new();
     let gain = rig.settings.gain;
     let mut candidates = match goal {
@@ -254,9 +297,9 @@ pub fn suggest(
             for (sign, want, have) in [("+", positive, off_peaks.0), ("-", negative, off_peaks.1)] {
                 if want >= have {
                     return Err(format!(
-                        "a {sign}{want} V clamp cannot act: with the clamp off the stage swings only {sign}{have:.2} V \
-                         at the clamp node at gain {gain} on this input, so the limit is {sign}{have:.2} V; \
-                         lower the goal, or raise the gain or the input level"
+                        "a clamp level of {sign}{want} V cannot act: with the clamp off the stage swings only \
+                         {sign}{have:.2} V at the clamp node at gain {gain} on this input, so the limit is \
+                         {sign}{have:.2} V; lower the goal, or raise the gain or the input level"
                     ));
                 }
             }
@@ -268,10 +311,12 @@ pub fn suggest(
                 let floor = threshold(&lowest, current);
                 if want < floor - 0.5 {
                     return Err(format!(
-                        "a {sign}{want} V clamp is below the family's reach: the lowest E24 part, {} ({} V), \
-                         clamps near {sign}{floor:.2} V here (reverse plus the other part's forward drop); \
-                         the limit is {sign}{floor:.2} V",
-                        lowest.part_number, lowest.volts
+                        "a clamp level of {sign}{want} V is below the family's reach: the lowest E24 part, {} \
+                         (Vz {} V), conducts at {sign}{floor:.2} V here (at {}, reverse plus the other part's \
+                         forward drop); the limit is {sign}{floor:.2} V",
+                        lowest.part_number,
+                        lowest.volts,
+                        breakdown_dsp::units::si(current, "A")
                     ));
                 }
                 // The part whose estimated clamp is nearest the goal, and its neighbours.
@@ -292,10 +337,10 @@ pub fn suggest(
                     pairs.push((*p, *n));
                 }
             }
-            let mut out: Vec<Candidate> = evaluate(rig, stimulus, &off, pairs)?
+            let mut out: Vec<Candidate> = evaluate(rig, stimulus, pairs)?
                 .into_iter()
-                .map(|(p, n, o)| {
-                    let mut c = candidate(p, n, &o, &off);
+                .map(|(p, n, o, l)| {
+                    let mut c = candidate(p, n, &o, l, &off);
                     c.miss = (c.peaks.0 - positive)
                         .abs()
                         .max((c.peaks.1 - negative).abs());
@@ -372,10 +417,10 @@ pub fn suggest(
                     pairs.push((*p, *n));
                 }
             }
-            let mut out: Vec<Candidate> = evaluate(rig, stimulus, &off, pairs)?
+            let mut out: Vec<Candidate> = evaluate(rig, stimulus, pairs)?
                 .into_iter()
-                .map(|(p, n, o)| {
-                    let mut c = candidate(p, n, &o, &off);
+                .map(|(p, n, o, l)| {
+                    let mut c = candidate(p, n, &o, l, &off);
                     c.miss = (c.share - want).abs();
                     c.meets = c.miss <= 0.02;
                     c
@@ -406,7 +451,7 @@ fn before_valve(
     rig: &Rig,
     stimulus: &Stimulus,
     parts: &[Part],
-    off: &Outcome,
+    off: &Reference,
     tone_hz: f64,
     notes: &mut Vec<String>,
 ) -> Result<Vec<Candidate>, String> {
@@ -460,14 +505,14 @@ fn before_valve(
             Ok((z, v))
         },
     );
-    let rendered = evaluate(rig, stimulus, off, pairs)?;
+    let rendered = evaluate(rig, stimulus, pairs)?;
     let mut out = Vec::new();
-    for ((p, n, o), check) in rendered.into_iter().zip(checks) {
+    for ((p, n, o, l), check) in rendered.into_iter().zip(checks) {
         let (z, v) = check?;
-        let mut c = candidate(p, n, &o, off);
+        let mut c = candidate(p, n, &o, l, off);
         match (z, v) {
             (Some(z), Some(v)) => {
-                let margin = 20.0 * (v / z).log10();
+                let margin = breakdown_dsp::units::gain_to_db(v / z);
                 c.meets = margin > 0.0;
                 c.miss = -margin;
                 c.note = format!(
@@ -519,24 +564,26 @@ pub fn variant_toml(c: &Candidate) -> String {
 pub fn suggestion_text(s: &Suggestion) -> String {
     let mut t = String::new();
     let goal = match s.goal {
-        Goal::Clamp { positive, negative } => format!("clamp at +{positive} / -{negative} V peak"),
+        Goal::Clamp { positive, negative } => {
+            format!("clamp level +{positive} / -{negative} V peak")
+        }
         Goal::Share(x) => format!("clamped {:.1}% of the time", x * 100.0),
         Goal::BeforeValve => "Zeners conduct before any valve limits".into(),
     };
     t.push_str(&format!(
-        "Goal: {goal}. Clamp off: the clamp node swings +{:.2} / -{:.2} V.\n",
+        "Goal: {goal}. Clamp off: the clamp node swings +{:.2} / -{:.2} V (the clamp level without parts).\n",
         s.off_peaks.0, s.off_peaks.1
     ));
     for n in &s.notes {
         t.push_str(&format!("Note: {n}\n"));
     }
     t.push_str(
-        "rank  positive            negative            clamp +V  clamp -V  clamped  loudness  goal\n",
+        "rank  positive            negative            level +V  level -V  clamped  loudness    goal\n",
     );
     for (i, c) in s.candidates.iter().enumerate() {
         let verdict = if c.meets { "meets" } else { "misses" };
         t.push_str(&format!(
-            "{:>4}  {:<8} {:>5.1} V    {:<8} {:>5.1} V    {:>8.2}  {:>8.2}  {:>6.1}%  {:>+6.2} dB  {verdict}{}\n",
+            "{:>4}  {:<8} {:>5.1} V    {:<8} {:>5.1} V    {:>8.2}  {:>8.2}  {:>6.1}%  {:>9}  {verdict}{}\n",
             i + 1,
             c.positive.part_number,
             c.positive.volts,
@@ -545,10 +592,16 @@ pub fn suggestion_text(s: &Suggestion) -> String {
             c.peaks.0,
             c.peaks.1,
             c.share * 100.0,
-            c.loudness_db,
+            match c.loudness_change {
+                Some(d) => format!("{d:+.2} LU"),
+                None => "silent".to_string(),
+            },
             if c.note.is_empty() { String::new() } else { format!(" ({})", c.note) }
         ));
     }
-    t.push_str("(loudness: RMS of the level pot wiper against the clamp off, unweighted)\n");
+    t.push_str(
+        "(level: the clamp node's peak volts; loudness: integrated loudness of the level pot wiper, EBU R128 / \
+         ITU-R BS.1770 via ebur128, against the clamp off, in LU; \"silent\" when a render is too quiet to measure)\n",
+    );
     t
 }

@@ -21,7 +21,7 @@ fn rig(position: usize, gain: f64, quality: Quality) -> Rig {
         position,
         ..Default::default()
     };
-    Rig::new(Circuit::reference(), settings, quality).unwrap()
+    Rig::new(Circuit::one_stage(), settings, quality).unwrap()
 }
 
 /// What a direct per-sample render at 1x says about each element, read from the stage's own readouts
@@ -39,11 +39,11 @@ fn direct_flags(rig: &Rig, gain: f64, volts: f64, criteria: &Criteria) -> [bool;
         if n < s.measure_from {
             continue;
         }
-        let p = e.stage().probe();
+        let p = e.readout();
         f[0] |= p.zener_current.abs() > criteria.zener_current;
-        f[1] |= p.gain_grid_current > criteria.gain_grid_current;
-        f[2] |= p.gain_plate_current < criteria.gain_cutoff_current;
-        f[3] |= p.follower_plate_current < criteria.follower_cutoff_current;
+        f[1] |= p.gain_stage().grid_current > criteria.gain_grid_current;
+        f[2] |= p.gain_stage().plate_current < criteria.gain_cutoff_current;
+        f[3] |= p.follower().plate_current < criteria.follower_cutoff_current;
     }
     f
 }
@@ -133,7 +133,7 @@ fn steady_window(signal: &[f32], from: usize) -> &[f32] {
 /// A circuit with the pasted variant text as its only clamp position besides "off": the independent path
 /// from the printed suggestion back to a render.
 fn circuit_from_variant(text: &str) -> Circuit {
-    let mut toml = Circuit::reference().to_toml();
+    let mut toml = Circuit::one_stage().to_toml();
     let body: Vec<&str> = text
         .lines()
         .filter(|l| l.starts_with("positive") || l.starts_with("negative"))
@@ -147,7 +147,7 @@ fn circuit_from_variant(text: &str) -> Circuit {
 
 /// The reference circuit with one more switch position, "probe", holding a pair of parts given by volts.
 fn with_probe_pair(positive_volts: f64, negative_volts: f64) -> Circuit {
-    let mut c = Circuit::reference();
+    let mut c = Circuit::one_stage();
     c.clamp
         .position
         .push(breakdown_dsp::circuit::SwitchPosition {
@@ -277,7 +277,7 @@ fn impossible_goals_are_refused_naming_the_limit() {
         position: 0,
         ..Default::default()
     };
-    let mut e = Engine::new(&Circuit::reference(), RATE, Quality::X2, settings).unwrap();
+    let mut e = Engine::new(&Circuit::one_stage(), RATE, Quality::X2, settings).unwrap();
     e.set_input_calibration(1.0);
     let v = e.render(&s.volts, Probe::Clamp);
     let peak = v[s.measure_from..].iter().fold(0.0f32, |m, x| m.max(*x)) as f64;
@@ -307,7 +307,7 @@ fn impossible_goals_are_refused_naming_the_limit() {
     )
     .unwrap_err();
     assert!(err.contains("1N4728A"), "{err}");
-    let floor = number_after(&err, "clamps near +");
+    let floor = number_after(&err, "conducts at +");
     assert!(floor > 2.0 && floor < 4.5, "{err}");
     // A share no part reaches on a quiet input at low gain.
     let quiet = Stimulus::sustained(0.05, 1000.0);
@@ -327,12 +327,35 @@ fn impossible_goals_are_refused_naming_the_limit() {
     assert!(suggest::parse_goal("share=1.5").is_err());
     assert!(suggest::parse_goal("loud").is_err());
     assert_eq!(
-        suggest::parse_goal("clamp=+21,-8").unwrap(),
+        suggest::parse_goal("clamp-level=+21,-8").unwrap(),
         Goal::Clamp {
             positive: 21.0,
             negative: 8.0
         }
     );
+    // The signs name the sides, in either order; the old name still reads.
+    for goal in ["clamp-level=-12,+6", "clamp=+6,-12"] {
+        assert_eq!(
+            suggest::parse_goal(goal).unwrap(),
+            Goal::Clamp {
+                positive: 6.0,
+                negative: 12.0
+            },
+            "{goal}"
+        );
+    }
+    assert_eq!(
+        suggest::parse_goal("clamp-level=15").unwrap(),
+        Goal::Clamp {
+            positive: 15.0,
+            negative: 15.0
+        }
+    );
+    // Without signs, or with the same sign twice, two levels are ambiguous: refused with the right form.
+    for goal in ["clamp-level=12,6", "clamp-level=+12,+6", "clamp-level=-12"] {
+        let e = suggest::parse_goal(goal).unwrap_err();
+        assert!(e.contains("clamp-level=+12,-6"), "{goal}: {e}");
+    }
 }
 
 /// Issue 5: dissipation figures agree with probed voltage times current integrated over the render, within 1%.
@@ -377,7 +400,7 @@ fn dissipation_matches_integrated_probe_power() {
         pr.average_watts,
         nr.average_watts
     );
-    // And each part's voltage from the device equation itself (BRIEF section 4, solved exactly, no table).
+    // And each part's voltage from the device equation itself (docs/model.md section 4, solved exactly, no table).
     let zp = Zener::fit(&FAMILY_1N47XXA.sheet_for(18.0));
     let zn = Zener::fit(&FAMILY_1N47XXA.sheet_for(5.6));
     // The positive part carries -I anode to cathode; its cathode-to-anode voltage is -V(-I).
@@ -400,7 +423,7 @@ fn dissipation_matches_integrated_probe_power() {
 
 #[test]
 fn coupling_cap_sees_the_follower_cathode_dc() {
-    // BRIEF section 3 (ngspice and an independent solver): the gain plate idles near 201 V and the follower's
+    // docs/model.md section 3 (ngspice and an independent solver): the gain plate idles near 201 V and the follower's
     // grid sits about 0.05 V above its cathode, so the cap holds about 201 V.
     let s = Stimulus::burst(0.01, 1000.0);
     let (rat, _) = ratings::ratings(
@@ -430,7 +453,7 @@ fn coupling_cap_sees_the_follower_cathode_dc() {
 
 #[test]
 fn tolerance_corners_move_the_clamp_with_the_zener_voltage() {
-    // A clamp sits near Vz + Vf (common practice, BRIEF section 2): +/-5% on a 20 V part moves the positive
+    // A clamp sits near Vz + Vf (common practice, docs/model.md section 2): +/-5% on a 20 V part moves the positive
     // clamp by about +/-1 V, so the spread is near 2 V (allow 1.4 .. 2.6 V for the knee's current dependence).
     let s = Stimulus::sustained(1.5, 1000.0);
     let spread = ratings::tolerance_spread(&rig(1, 0.8, Quality::X2), &s, 0.05).unwrap();
@@ -456,7 +479,7 @@ fn parts_list_names_family_parts_orientation_and_ratings() {
         400.0,
     )
     .unwrap();
-    // BRIEF section 4 check values: 1N4747A is the 20 V row of the 1N47xxA family.
+    // docs/model.md section 4 check values: 1N4747A is the 20 V row of the 1N47xxA family.
     assert!(lines.iter().any(|l| l.part_number == "1N4747A"));
     assert!(lines
         .iter()

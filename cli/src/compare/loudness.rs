@@ -1,6 +1,7 @@
 //! Loudness matching: EBU R128 / ITU-R BS.1770-4 integrated loudness (the `ebur128` crate), a gain to the
 //! target, and true-peak limiting only when the matched file would exceed the true-peak ceiling.
 
+use breakdown_dsp::units::{db_to_gain, gain_to_db};
 use ebur128::{EbuR128, Mode};
 
 /// True-peak ceiling of matched files (dBTP), EBU R128's maximum permitted true-peak level of -1 dBTP.
@@ -39,7 +40,7 @@ pub fn measure(channels: &[Vec<f32>], rate: u32) -> Result<(f64, f64), String> {
                 .map_err(|e| format!("loudness meter: {e:?}"))?,
         );
     }
-    Ok((loudness, 20.0 * peak.log10()))
+    Ok((loudness, gain_to_db(peak)))
 }
 
 /// What matching did to one file.
@@ -62,10 +63,6 @@ pub struct MatchReport {
     pub true_peak_after_dbtp: f64,
     /// The file was too quiet to measure (below the -70 LUFS absolute gate) and was left as it is.
     pub silent: bool,
-}
-
-fn db_to_gain(db: f64) -> f64 {
-    10f64.powf(db / 20.0)
 }
 
 /// Bring `channels` to `target_lufs` integrated loudness, in place, limiting true peaks only if needed.
@@ -263,10 +260,7 @@ fn limit(channels: &mut [Vec<f32>], rate: u32, ceiling: f64) -> (f64, f64) {
             *x *= g;
         }
     }
-    (
-        -20.0 * (deepest as f64).log10(),
-        active as f64 / frames as f64,
-    )
+    (-gain_to_db(deepest as f64), active as f64 / frames as f64)
 }
 
 #[cfg(test)]

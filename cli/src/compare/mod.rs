@@ -2,14 +2,18 @@
 //! cores, into loudness-matched clips, blind A/B clips and a report (HTML with SVG plots, JSON, CSV).
 //!
 //! Everything is written into a temporary folder beside the output folder and moved into place at the end,
-//! so an error never leaves a half-written output behind.
+//! so an error (or Ctrl-C) never leaves a half-written output behind. The output folder carries a manifest,
+//! `breakdown-output.json`, listing every file Breakdown wrote; an existing folder is replaced only when it is
+//! empty or holds exactly what its manifest lists, so a folder with anything of the user's in it is never
+//! deleted.
 
 pub mod abclip;
 pub mod loudness;
 pub mod plan;
 pub mod tone;
 
-use crate::audio::{self, Audio};
+use crate::audio::{self, Audio, Silence};
+use crate::files::{self, Temporary};
 use crate::report::{
     self, AbSegment, DiInfo, DiResult, PartInfo, PartLoad, Report, VariantInfo, ZenerLoad,
 };
@@ -17,12 +21,13 @@ use breakdown_dsp::engine::CLAMPED_CURRENT;
 use breakdown_dsp::oversampling::decimator_memory;
 use breakdown_dsp::parts::FAMILY_1N47XXA;
 use breakdown_dsp::{Engine, Meters, Probe};
-use indicatif::{ProgressBar, ProgressStyle};
+use indicatif::{ProgressBar, ProgressDrawTarget, ProgressStyle};
 use plan::{DiEntry, Plan, Variant};
+use std::io::IsTerminal;
 use std::path::{Path, PathBuf};
 use std::sync::atomic::{AtomicBool, AtomicUsize, Ordering};
 use std::sync::Mutex;
-use std::time::Instant;
+use std::time::{Duration, Instant};
 
 /// Pair current at which the clamp thresholds are read (A).
 pub const THRESHOLD_CURRENT: f64 = 1e-3;
@@ -32,26 +37,43 @@ pub const SCOPE_SECONDS: f64 = 0.02;
 const MIN_DI_SECONDS: f64 = 1.0;
 /// Progress is reported every this many samples.
 const PROGRESS_STEP: usize = 8192;
+/// The progress bar appears only once a run has taken this long (short runs finish without one).
+pub const PROGRESS_AFTER: Duration = Duration::from_secs(2);
+/// The manifest of an output folder: every file Breakdown wrote there.
+pub const MANIFEST: &str = "breakdown-output.json";
+/// Most DI files and variants in a plan, and the most renders (DI x variant): beyond these a run takes hours
+/// and the report is unreadable.
+pub const MAX_DI: usize = 32;
+pub const MAX_VARIANTS: usize = 24;
+pub const MAX_RENDERS: usize = 256;
 
 #[derive(clap::Args)]
 pub struct CompareArgs {
-    /// Comparison plan (TOML): DI files, circuit, output folder, loudness target, variants.
+    /// Comparison plan (TOML): DI files, circuit, output folder, loudness target, variants (README,
+    /// "Comparison plans").
     pub plan: PathBuf,
-    /// Write into this folder instead of the plan's `output`.
-    #[arg(long)]
+    /// Write into this folder instead of the plan's `output`. An existing folder is replaced only when it holds
+    /// nothing but an earlier Breakdown output (its breakdown-output.json lists every file).
+    #[arg(long, value_name = "FOLDER")]
     pub output: Option<PathBuf>,
+    #[arg(long, hide = true, conflicts_with = "output")]
+    pub out: Option<PathBuf>,
     /// Worker threads (default: every core).
-    #[arg(long)]
-    pub jobs: Option<usize>,
+    #[arg(long, value_name = "N", allow_negative_numbers = true)]
+    pub jobs: Option<i64>,
     /// No progress bar.
     #[arg(long)]
     pub quiet: bool,
+    #[command(flatten)]
+    pub calibration: crate::options::CalibrationArgs,
 }
 
 /// How to run a plan.
 #[derive(Default)]
 pub struct Options {
     pub output: Option<PathBuf>,
+    /// The command line's input calibration (overrides the plan's and the circuit file's).
+    pub calibration: Option<crate::options::Calibration>,
     pub jobs: Option<usize>,
     pub quiet: bool,
     /// Extra files to place in the output (relative path, contents), e.g. the demo's inputs.
@@ -71,9 +93,19 @@ pub struct Outcome {
 }
 
 pub fn run(args: CompareArgs) -> Result<(), String> {
+    let jobs = match args.jobs {
+        None => None,
+        Some(n) if (1..=256).contains(&n) => Some(n as usize),
+        Some(n) => {
+            return Err(format!(
+                "--jobs {n}: give 1 to 256 worker threads (default: every core)"
+            ))
+        }
+    };
     let options = Options {
-        output: args.output,
-        jobs: args.jobs,
+        output: crate::options::pick(args.output.as_ref(), args.out.as_ref(), "--out", "--output"),
+        calibration: args.calibration.given()?,
+        jobs,
         quiet: args.quiet,
         extra_files: Vec::new(),
         plan_label: None,
@@ -98,15 +130,20 @@ pub fn print_summary(outcome: &Outcome) {
                 .map(|v| v.tone.thd_f_percent)
                 .unwrap_or(f64::NAN);
             let m = &res.matching;
+            let lufs = if m.silent {
+                "silent".to_string()
+            } else {
+                format!("{:.1}", m.loudness_before_lufs)
+            };
             println!(
-                "  {:<28} {:>9.2} {:>9.2} {:>9.2} {:>9.2} {:>8.2} {:>9.1}  {}",
-                res.variant,
+                "  {:<28} {:>9.2} {:>9.2} {:>9.2} {:>9.2} {:>8.2} {:>9}  {}",
+                breakdown_dsp::units::clip(&res.variant, 28),
                 res.clamp_peak_positive_volts,
                 res.clamp_peak_negative_volts,
                 res.clamp_peak_to_peak_volts,
                 res.share_clamped_percent,
                 thd,
-                m.loudness_before_lufs,
+                lufs,
                 if m.limited {
                     format!("yes, up to {:.1} dB", m.limiter_max_reduction_db)
                 } else {
@@ -116,8 +153,10 @@ pub fn print_summary(outcome: &Outcome) {
         }
     }
     println!(
-        "THD_F: 1 kHz tone at {} V peak, harmonics 2-{} up to {} Hz, at the level pot wiper.",
-        r.tone.peak_volts_at_jack, r.tone.highest_harmonic, r.tone.band_hz
+        "THD_F: {} Hz tone at {} peak at the jack, read at the level pot wiper; {}.",
+        r.tone.frequency_hz,
+        breakdown_dsp::units::si(r.tone.peak_volts_at_jack, "V"),
+        breakdown_dsp::measure::THD_F_DEFINITION
     );
     println!(
         "Rendered {:.1} s of audio per variant-channel in {:.1} s on {} threads.",
@@ -129,69 +168,120 @@ pub fn print_summary(outcome: &Outcome) {
     println!("Safety: {}", report::SAFETY);
 }
 
-/// A folder removed on drop unless kept.
-struct TempFolder {
-    path: PathBuf,
-    keep: bool,
+/// Every file under `folder`, as paths relative to it ('/'-separated), sorted; folders are not listed.
+fn listing(folder: &Path) -> Result<Vec<String>, String> {
+    fn walk(root: &Path, dir: &Path, out: &mut Vec<String>) -> std::io::Result<()> {
+        for entry in std::fs::read_dir(dir)? {
+            let entry = entry?;
+            let path = entry.path();
+            if entry.file_type()?.is_dir() {
+                walk(root, &path, out)?;
+            } else {
+                let rel = path.strip_prefix(root).unwrap_or(&path);
+                out.push(
+                    rel.components()
+                        .map(|c| c.as_os_str().to_string_lossy())
+                        .collect::<Vec<_>>()
+                        .join("/"),
+                );
+            }
+        }
+        Ok(())
+    }
+    let mut out = Vec::new();
+    walk(folder, folder, &mut out)
+        .map_err(|e| format!("cannot read the folder '{}': {e}", folder.display()))?;
+    out.sort();
+    Ok(out)
 }
 
-impl Drop for TempFolder {
-    fn drop(&mut self) {
-        if !self.keep {
-            let _ = std::fs::remove_dir_all(&self.path);
+#[derive(serde::Serialize, serde::Deserialize)]
+struct Manifest {
+    written_by: String,
+    files: Vec<String>,
+}
+
+/// Write the manifest of a finished output folder: every file in it.
+fn write_manifest(folder: &Path) -> Result<(), String> {
+    let manifest = Manifest {
+        written_by: format!("Breakdown {}", env!("CARGO_PKG_VERSION")),
+        files: listing(folder)?,
+    };
+    let text = serde_json::to_string_pretty(&manifest).unwrap_or_default();
+    std::fs::write(folder.join(MANIFEST), text).map_err(|e| format!("cannot write {MANIFEST}: {e}"))
+}
+
+/// An existing output folder may be replaced only when it is empty or holds exactly the files its manifest
+/// lists, and never when an input of the run lies inside it.
+pub fn check_output(output: &Path, inputs: &[(String, PathBuf)]) -> Result<(), String> {
+    let shown = output.display();
+    for (what, path) in inputs {
+        if files::inside(path, output) {
+            return Err(format!(
+                "the output folder '{shown}' holds the {what} '{}': Breakdown replaces its output folder whole, so it may not hold an input; choose another output folder",
+                path.display()
+            ));
         }
     }
-}
-
-fn sibling(output: &Path, tag: &str) -> PathBuf {
-    let name = output
-        .file_name()
-        .map(|n| n.to_string_lossy().into_owned())
-        .unwrap_or_else(|| "output".into());
-    let parent = match output.parent() {
-        Some(p) if !p.as_os_str().is_empty() => p.to_path_buf(),
-        _ => PathBuf::from("."),
-    };
-    parent.join(format!(".{name}.{tag}-{}", std::process::id()))
-}
-
-/// An existing output folder is replaced only if it is empty or holds an earlier report.
-fn check_output(output: &Path) -> Result<(), String> {
     if !output.exists() {
         return Ok(());
     }
-    let empty = std::fs::read_dir(output)
-        .map_err(|e| format!("cannot read output folder '{}': {e}", output.display()))?
-        .next()
-        .is_none();
-    if empty || output.join("report.json").is_file() {
-        Ok(())
-    } else {
-        Err(format!(
-            "output folder '{}' exists and does not hold an earlier Breakdown report; choose another folder \
-             or empty it",
-            output.display()
-        ))
+    if !output.is_dir() {
+        return Err(format!(
+            "output '{shown}' is a file; the output must be a folder"
+        ));
     }
+    let present = listing(output)?;
+    if present.is_empty() {
+        return Ok(());
+    }
+    let refuse = |why: String| {
+        Err(format!(
+            "output folder '{shown}' exists and {why}; Breakdown replaces only a folder holding nothing but its own earlier output: choose another folder, or empty this one yourself"
+        ))
+    };
+    let Ok(text) = std::fs::read_to_string(output.join(MANIFEST)) else {
+        return refuse(format!(
+            "has no {MANIFEST} (it holds {} file(s) Breakdown did not list, e.g. '{}')",
+            present.len(),
+            breakdown_dsp::units::clip(&present[0], 60)
+        ));
+    };
+    let Ok(manifest) = serde_json::from_str::<Manifest>(&text) else {
+        return refuse(format!("its {MANIFEST} is not one Breakdown wrote"));
+    };
+    let foreign: Vec<&String> = present
+        .iter()
+        .filter(|f| f.as_str() != MANIFEST && !manifest.files.contains(f))
+        .collect();
+    if let Some(first) = foreign.first() {
+        return refuse(format!(
+            "holds {} file(s) Breakdown did not write, e.g. '{}'",
+            foreign.len(),
+            breakdown_dsp::units::clip(first, 60)
+        ));
+    }
+    Ok(())
 }
 
-/// Move the finished folder into place (replacing an earlier report).
-fn install(temp: &mut TempFolder, output: &Path) -> Result<(), String> {
+/// Move the finished folder into place (replacing an earlier output, checked by `check_output`).
+fn install(temp: &mut Temporary, output: &Path) -> Result<(), String> {
     let shown = output.display();
     if output.exists() {
-        let old = sibling(output, "old");
-        std::fs::rename(output, &old)
+        let mut old = Temporary::new(files::sibling(output, "old"));
+        std::fs::rename(output, &old.path)
             .map_err(|e| format!("cannot replace the earlier output '{shown}': {e}"))?;
         if let Err(e) = std::fs::rename(&temp.path, output) {
-            let _ = std::fs::rename(&old, output);
+            let _ = std::fs::rename(&old.path, output);
+            old.keep();
             return Err(format!("cannot move the results into '{shown}': {e}"));
         }
-        let _ = std::fs::remove_dir_all(&old);
+        drop(old);
     } else {
         std::fs::rename(&temp.path, output)
             .map_err(|e| format!("cannot move the results into '{shown}': {e}"))?;
     }
-    temp.keep = true;
+    temp.keep();
     Ok(())
 }
 
@@ -245,17 +335,11 @@ struct Shared<'a> {
     cancel: &'a AtomicBool,
 }
 
+/// The meters of every channel as one.
 fn combine(meters: &[Meters]) -> Meters {
     let mut m = meters[0];
     for n in &meters[1..] {
-        m.samples += n.samples;
-        m.clamped_samples += n.clamped_samples;
-        m.clamp_peak_positive = m.clamp_peak_positive.max(n.clamp_peak_positive);
-        m.clamp_peak_negative = m.clamp_peak_negative.min(n.clamp_peak_negative);
-        m.zener_peak_current = m.zener_peak_current.max(n.zener_peak_current);
-        m.zener_current_square_sum += n.zener_current_square_sum;
-        m.positive_part_peak_watts = m.positive_part_peak_watts.max(n.positive_part_peak_watts);
-        m.negative_part_peak_watts = m.negative_part_peak_watts.max(n.negative_part_peak_watts);
+        m.merge(n);
     }
     m
 }
@@ -346,7 +430,7 @@ fn render_job(s: &Shared, di_index: usize, vi: usize) -> Result<DiResult, String
     }
     let rms = (square / count.max(1) as f64).sqrt();
     let crest_factor_db = if rms > 0.0 {
-        20.0 * (peak / rms).log10()
+        breakdown_dsp::units::gain_to_db(peak / rms)
     } else {
         0.0
     };
@@ -371,12 +455,7 @@ fn render_job(s: &Shared, di_index: usize, vi: usize) -> Result<DiResult, String
     let (pos, neg) = part_specs(variant);
     let rating = FAMILY_1N47XXA.power_rating_watts;
     let load = |volts: Option<f64>, average: f64, peak: f64| {
-        volts.map(|_| PartLoad {
-            average_watts: average,
-            peak_watts: peak,
-            rating_watts: rating,
-            average_share_of_rating_percent: average / rating * 100.0,
-        })
+        volts.map(|_| PartLoad::new(average, peak, rating))
     };
     let zener = if pos.is_none() && neg.is_none() {
         None
@@ -407,7 +486,11 @@ fn run_job(s: &Shared, job: &Job) -> Result<JobResult, String> {
     match *job {
         Job::Tone { variant } => {
             let v = &s.plan.variants[variant];
-            let r = tone::run(v, s.plan.tone_peak_volts, s.plan.volts_at_full_scale)?;
+            let r = tone::run(
+                v,
+                s.plan.tone_peak_volts,
+                s.plan.calibration.volts_at_full_scale,
+            )?;
             s.progress
                 .inc((tone::TONE_SECONDS * tone::TONE_RATE) as u64);
             Ok(JobResult::Tone(r))
@@ -421,23 +504,32 @@ fn read_inputs(plan: &Plan) -> Result<Vec<Audio>, String> {
     plan.di
         .iter()
         .map(|entry: &DiEntry| {
-            let audio = audio::read_wav(&entry.path).map_err(|e| format!("{shown} line {}: {e}", entry.line))?;
-            if !(22_050..=384_000).contains(&audio.rate) {
-                return Err(format!(
-                    "{shown} line {}: DI '{}' is at {} Hz; Breakdown renders 22050 to 384000 Hz",
-                    entry.line,
-                    entry.path.display(),
-                    audio.rate
-                ));
+            let at = |e: String| format!("{shown} line {}: {e}", entry.line);
+            let audio = audio::read_input(
+                &entry.path,
+                &entry.name,
+                Some(plan.calibration.volts_at_full_scale),
+                Silence::Refuse("a silent DI cannot be compared or matched in loudness"),
+            )
+            .map_err(at)?;
+            if !(crate::render::MIN_RATE..=crate::render::MAX_RATE).contains(&audio.rate) {
+                return Err(at(format!(
+                    "DI '{}' is at {} Hz; Breakdown renders {} to {} Hz",
+                    entry.name,
+                    audio.rate,
+                    crate::render::MIN_RATE,
+                    crate::render::MAX_RATE
+                )));
             }
             if audio.seconds() < MIN_DI_SECONDS {
-                return Err(format!(
-                    "{shown} line {}: DI '{}' is {:.2} s long; give at least {MIN_DI_SECONDS} s (loudness needs it)",
-                    entry.line,
-                    entry.path.display(),
+                return Err(at(format!(
+                    "DI '{}' is {:.2} s long; give at least {MIN_DI_SECONDS} s (integrated loudness needs \
+                     several 400 ms blocks)",
+                    entry.name,
                     audio.seconds()
-                ));
+                )));
             }
+            audio::check_size(&entry.path, audio.frames(), audio.channels.len(), 4).map_err(at)?;
             Ok(audio)
         })
         .collect()
@@ -451,7 +543,7 @@ fn variant_infos(plan: &Plan) -> Result<Vec<VariantInfo>, String> {
             let engine = Engine::new(&v.circuit, 48_000.0, v.quality, v.settings)
                 .map_err(|e| format!("variant '{}': {e}", v.name))?;
             let thresholds = engine
-                .stage()
+                .model()
                 .pair(v.settings.position)
                 .filter(|p| !p.is_open())
                 .map(|p| p.thresholds_at(THRESHOLD_CURRENT));
@@ -476,7 +568,6 @@ fn variant_infos(plan: &Plan) -> Result<Vec<VariantInfo>, String> {
                 tone: report::ToneResult {
                     thd_f_percent: f64::NAN,
                     highest_harmonic: 0,
-                    band_hz: tone::BAND_HZ,
                     even_share_percent: f64::NAN,
                     fundamental_wiper_volts: f64::NAN,
                     harmonics_db: Vec::new(),
@@ -488,30 +579,44 @@ fn variant_infos(plan: &Plan) -> Result<Vec<VariantInfo>, String> {
         .collect()
 }
 
-/// Run a plan file. All checks happen before the first sample is rendered.
-pub fn run_plan(plan_path: &Path, options: Options) -> Result<Outcome, String> {
-    let started = Instant::now();
-    let plan = plan::load(plan_path, options.output.as_deref())?;
-    let inputs = read_inputs(&plan)?;
-    let mut variants = variant_infos(&plan)?;
-    check_output(&plan.output).map_err(|e| match plan.output_line {
-        Some(line) => format!("{} line {line}: {e}", plan.path.display()),
-        None => e,
-    })?;
-    if options.jobs == Some(0) {
-        return Err("--jobs 0: give at least one worker thread".into());
+/// The inputs a plan names, for the output checks: (what, path).
+fn plan_inputs(plan: &Plan) -> Vec<(String, PathBuf)> {
+    let mut inputs = vec![("plan".to_string(), plan.path.clone())];
+    for d in &plan.di {
+        inputs.push(("DI".into(), d.path.clone()));
     }
+    if let Some(c) = &plan.circuit_path {
+        inputs.push(("circuit file".into(), c.clone()));
+    }
+    inputs
+}
 
-    let temp_path = sibling(&plan.output, "partial");
-    let _ = std::fs::remove_dir_all(&temp_path);
-    let mut temp = TempFolder {
-        path: temp_path.clone(),
-        keep: false,
-    };
-    std::fs::create_dir_all(temp_path.join("unmatched"))
-        .map_err(|e| format!("cannot create '{}': {e}", temp_path.display()))?;
+/// Bounds on what a plan may ask for, stated in the message.
+fn check_size_of_run(plan: &Plan) -> Result<(), String> {
+    let shown = plan.path.display();
+    let (d, v) = (plan.di.len(), plan.variants.len());
+    if d > MAX_DI {
+        return Err(format!(
+            "{shown}: {d} DI files; a plan takes at most {MAX_DI} (split it into several plans)"
+        ));
+    }
+    if v > MAX_VARIANTS {
+        return Err(format!(
+            "{shown}: {v} variants; a plan takes at most {MAX_VARIANTS} (a report with more is unreadable)"
+        ));
+    }
+    if d * v > MAX_RENDERS {
+        return Err(format!(
+            "{shown}: {d} DI files x {v} variants = {} renders; a plan takes at most {MAX_RENDERS}",
+            d * v
+        ));
+    }
+    Ok(())
+}
 
-    let scopes: Vec<(usize, usize, usize)> = inputs
+/// Where the scope plots look (channel, start, length) and the A/B layout, per DI.
+fn layouts_of(plan: &Plan, inputs: &[Audio]) -> (Vec<(usize, usize, usize)>, Vec<abclip::Layout>) {
+    let scopes = inputs
         .iter()
         .map(|a| {
             let len = ((SCOPE_SECONDS * a.rate as f64).round() as usize).min(a.frames());
@@ -519,7 +624,7 @@ pub fn run_plan(plan_path: &Path, options: Options) -> Result<Outcome, String> {
             (c, start, len)
         })
         .collect();
-    let layouts: Vec<abclip::Layout> = inputs
+    let layouts = inputs
         .iter()
         .enumerate()
         .map(|(i, a)| {
@@ -533,12 +638,12 @@ pub fn run_plan(plan_path: &Path, options: Options) -> Result<Outcome, String> {
             )
         })
         .collect();
-    let clips: Vec<Mutex<Vec<Vec<f32>>>> = inputs
-        .iter()
-        .map(|a| Mutex::new(vec![vec![0.0f32; a.frames()]; a.channels.len()]))
-        .collect();
+    (scopes, layouts)
+}
 
-    // Work list: the long renders first, then the short tones, so the cores finish together.
+/// The work list, longest renders first and the short tones last (so the cores finish together), and the
+/// total progress count (host samples).
+fn schedule(plan: &Plan, inputs: &[Audio]) -> (Vec<Job>, u64, u64) {
     let mut jobs: Vec<(u64, Job)> = Vec::new();
     for (di, a) in inputs.iter().enumerate() {
         for variant in 0..plan.variants.len() {
@@ -551,66 +656,73 @@ pub fn run_plan(plan_path: &Path, options: Options) -> Result<Outcome, String> {
     for variant in 0..plan.variants.len() {
         jobs.push((0, Job::Tone { variant }));
     }
-    let total: u64 = inputs
-        .iter()
-        .map(|a| (a.frames() * a.channels.len()) as u64)
-        .sum::<u64>()
-        * plan.variants.len() as u64
-        + (tone::TONE_SECONDS * tone::TONE_RATE) as u64 * plan.variants.len() as u64;
-    let rendered_samples: u64 = inputs
+    let rendered: u64 = inputs
         .iter()
         .map(|a| (a.frames() * a.channels.len()) as u64)
         .sum::<u64>()
         * plan.variants.len() as u64;
+    let tones = (tone::TONE_SECONDS * tone::TONE_RATE) as u64 * plan.variants.len() as u64;
+    (
+        jobs.into_iter().map(|j| j.1).collect(),
+        rendered + tones,
+        rendered,
+    )
+}
 
-    let progress = if options.quiet {
-        ProgressBar::hidden()
-    } else {
-        let bar = ProgressBar::new(total);
-        bar.set_style(
-            ProgressStyle::with_template(
-                "{spinner} rendering [{bar:40}] {percent:>3}%  {elapsed} (eta {eta})",
-            )
-            .unwrap_or_else(|_| ProgressStyle::default_bar())
-            .progress_chars("=> "),
-        );
-        bar
-    };
-    let cores = std::thread::available_parallelism().map_or(1, |n| n.get());
-    let threads = options.jobs.unwrap_or(cores).min(jobs.len()).max(1);
-    let cancel = AtomicBool::new(false);
+fn progress_bar(total: u64) -> ProgressBar {
+    // Hidden at first: `execute` shows it once the run has taken PROGRESS_AFTER.
+    let bar = ProgressBar::with_draw_target(Some(total), ProgressDrawTarget::hidden());
+    bar.set_style(
+        ProgressStyle::with_template(
+            "{spinner} rendering [{bar:40}] {percent:>3}%  {elapsed} (eta {eta})",
+        )
+        .unwrap_or_else(|_| ProgressStyle::default_bar())
+        .progress_chars("=> "),
+    );
+    bar
+}
+
+/// Run every job over `threads` workers; the first real error stops the rest.
+fn execute(
+    shared: &Shared,
+    jobs: &[Job],
+    threads: usize,
+    show_progress: bool,
+) -> Result<Vec<JobResult>, String> {
     let next = AtomicUsize::new(0);
     let results: Mutex<Vec<Option<Result<JobResult, String>>>> =
         Mutex::new((0..jobs.len()).map(|_| None).collect());
-    let shared = Shared {
-        plan: &plan,
-        inputs: &inputs,
-        scopes: &scopes,
-        layouts: &layouts,
-        clips: &clips,
-        temp: &temp_path,
-        progress: &progress,
-        cancel: &cancel,
-    };
+    let started = Instant::now();
     std::thread::scope(|scope| {
-        for _ in 0..threads {
-            scope.spawn(|| loop {
-                let i = next.fetch_add(1, Ordering::Relaxed);
-                if i >= jobs.len() || cancel.load(Ordering::Relaxed) {
-                    break;
-                }
-                let r = run_job(&shared, &jobs[i].1);
-                if r.is_err() {
-                    cancel.store(true, Ordering::Relaxed);
-                }
-                if let Ok(mut all) = results.lock() {
-                    all[i] = Some(r);
-                }
-            });
+        let workers: Vec<_> = (0..threads)
+            .map(|_| {
+                scope.spawn(|| loop {
+                    let i = next.fetch_add(1, Ordering::Relaxed);
+                    if i >= jobs.len() || shared.cancel.load(Ordering::Relaxed) {
+                        break;
+                    }
+                    let r = run_job(shared, &jobs[i]);
+                    if r.is_err() {
+                        shared.cancel.store(true, Ordering::Relaxed);
+                    }
+                    if let Ok(mut all) = results.lock() {
+                        all[i] = Some(r);
+                    }
+                })
+            })
+            .collect();
+        let mut shown = false;
+        while !workers.iter().all(|w| w.is_finished()) {
+            if show_progress && !shown && started.elapsed() >= PROGRESS_AFTER {
+                shared
+                    .progress
+                    .set_draw_target(ProgressDrawTarget::stderr());
+                shown = true;
+            }
+            std::thread::sleep(Duration::from_millis(50));
         }
     });
-    progress.finish_and_clear();
-
+    shared.progress.finish_and_clear();
     let results = results
         .into_inner()
         .map_err(|_| "a render thread failed".to_string())?;
@@ -629,99 +741,102 @@ pub fn run_plan(plan_path: &Path, options: Options) -> Result<Outcome, String> {
     if let Some(e) = first_error {
         return Err(e);
     }
-    let mut per_di: Vec<Vec<Option<DiResult>>> = inputs
+    results
+        .into_iter()
+        .map(|r| match r {
+            Some(Ok(r)) => Ok(r),
+            _ => Err("a render job did not finish".to_string()),
+        })
+        .collect()
+}
+
+/// The A/B clip of one DI, its key (text and JSON) and the DI's entry in the report.
+fn finish_di(
+    plan: &Plan,
+    index: usize,
+    input: &Audio,
+    results: Vec<DiResult>,
+    shared: &Shared,
+) -> Result<DiInfo, String> {
+    let entry = &plan.di[index];
+    let layout = &shared.layouts[index];
+    let temp = shared.temp;
+    let mut clip = shared.clips[index]
+        .lock()
+        .map(|c| c.clone())
+        .map_err(|_| "A/B clip lock poisoned".to_string())?;
+    abclip::add_markers(&mut clip, layout, input.rate);
+    let clip_name = format!("{}_ab-blind.wav", entry.stem);
+    let key: Vec<AbSegment> = layout
+        .segments
         .iter()
-        .map(|_| plan.variants.iter().map(|_| None).collect())
+        .enumerate()
+        .map(|(k, s)| AbSegment {
+            index: k,
+            variant: plan.variants[s.variant].name.clone(),
+            start_seconds: s.start as f64 / input.rate as f64,
+            end_seconds: s.end as f64 / input.rate as f64,
+        })
         .collect();
-    for ((_, job), r) in jobs.iter().zip(results) {
-        match (job, r) {
-            (Job::Tone { variant }, Some(Ok(JobResult::Tone(t)))) => variants[*variant].tone = t,
-            (Job::Render { di, variant }, Some(Ok(JobResult::Render(d)))) => {
-                per_di[*di][*variant] = Some(*d)
-            }
-            _ => return Err("a render job did not finish".into()),
+    audio::write_wav_i24(
+        temp.join(&clip_name),
+        &Audio {
+            rate: input.rate,
+            channels: clip,
+        },
+    )?;
+    let mut text = format!(
+        "Key for {clip_name} (blind A/B clip of {}): listen first, then check.\n\
+         Segments of {} s; {}.\n\n",
+        entry.name,
+        plan.segment_seconds,
+        match plan.marker {
+            plan::Marker::Tick => "a 20 ms crossfade with a short tick between segments",
+            plan::Marker::Silence => "a 150 ms gap of silence between segments",
         }
+    );
+    for s in &key {
+        text.push_str(&format!(
+            "{:>3}  {:>8.3} s - {:>8.3} s  {}\n",
+            s.index + 1,
+            s.start_seconds,
+            s.end_seconds,
+            s.variant
+        ));
     }
+    let write = |name: String, body: String| {
+        std::fs::write(temp.join(&name), body).map_err(|e| format!("cannot write {name}: {e}"))
+    };
+    write(format!("{}_ab-key.txt", entry.stem), text)?;
+    write(
+        format!("{}_ab-key.json", entry.stem),
+        serde_json::to_string_pretty(&key).unwrap_or_default(),
+    )?;
+    let (channel, start, len) = shared.scopes[index];
+    Ok(DiInfo {
+        name: entry.stem.clone(),
+        file: entry.name.clone(),
+        seconds: input.seconds(),
+        sample_rate: input.rate,
+        channels: input.channels.len(),
+        input_peak_volts: input.peak().value * plan.calibration.volts_at_full_scale,
+        scope_start_seconds: start as f64 / input.rate as f64,
+        scope_seconds: len as f64 / input.rate as f64,
+        scope_channel: channel,
+        results,
+        ab_clip: clip_name,
+        ab_key: key,
+    })
+}
 
-    // A/B clips and their keys.
-    let mut di_infos = Vec::new();
-    for (i, ((entry, input), results)) in plan.di.iter().zip(&inputs).zip(per_di).enumerate() {
-        let layout = &layouts[i];
-        let mut clip = clips[i]
-            .lock()
-            .map(|c| c.clone())
-            .map_err(|_| "A/B clip lock poisoned".to_string())?;
-        abclip::add_markers(&mut clip, layout, input.rate);
-        let clip_name = format!("{}_ab-blind.wav", entry.stem);
-        let key: Vec<AbSegment> = layout
-            .segments
-            .iter()
-            .enumerate()
-            .map(|(k, s)| AbSegment {
-                index: k,
-                variant: plan.variants[s.variant].name.clone(),
-                start_seconds: s.start as f64 / input.rate as f64,
-                end_seconds: s.end as f64 / input.rate as f64,
-            })
-            .collect();
-        audio::write_wav_i24(
-            temp_path.join(&clip_name),
-            &Audio {
-                rate: input.rate,
-                channels: clip,
-            },
-        )?;
-        let mut text = format!(
-            "Key for {clip_name} (blind A/B clip of {}): listen first, then check.\n\
-             Segments of {} s; {}.\n\n",
-            entry.name,
-            plan.segment_seconds,
-            match plan.marker {
-                plan::Marker::Tick => "a 20 ms crossfade with a short tick between segments",
-                plan::Marker::Silence => "a 150 ms gap of silence between segments",
-            }
-        );
-        for s in &key {
-            text.push_str(&format!(
-                "{:>3}  {:>8.3} s - {:>8.3} s  {}\n",
-                s.index + 1,
-                s.start_seconds,
-                s.end_seconds,
-                s.variant
-            ));
-        }
-        let write = |name: String, body: String| {
-            std::fs::write(temp_path.join(&name), body)
-                .map_err(|e| format!("cannot write {name}: {e}"))
-        };
-        write(format!("{}_ab-key.txt", entry.stem), text)?;
-        write(
-            format!("{}_ab-key.json", entry.stem),
-            serde_json::to_string_pretty(&key).unwrap_or_default(),
-        )?;
-        let (channel, start, len) = scopes[i];
-        let input_peak = input
-            .channels
-            .iter()
-            .flat_map(|c| c.iter())
-            .fold(0.0f64, |m, x| m.max(x.abs() as f64));
-        di_infos.push(DiInfo {
-            name: entry.stem.clone(),
-            file: entry.name.clone(),
-            seconds: input.seconds(),
-            sample_rate: input.rate,
-            channels: input.channels.len(),
-            input_peak_volts: input_peak * plan.volts_at_full_scale,
-            scope_start_seconds: start as f64 / input.rate as f64,
-            scope_seconds: len as f64 / input.rate as f64,
-            scope_channel: channel,
-            results: results.into_iter().flatten().collect(),
-            ab_clip: clip_name,
-            ab_key: key,
-        });
-    }
-
-    let report = Report {
+/// The report's data model from the finished parts.
+fn build_report(
+    plan: &Plan,
+    options: &Options,
+    variants: Vec<VariantInfo>,
+    di: Vec<DiInfo>,
+) -> Report {
+    Report {
         tool: format!("Breakdown {}", env!("CARGO_PKG_VERSION")),
         plan: options
             .plan_label
@@ -733,34 +848,38 @@ pub fn run_plan(plan_path: &Path, options: Options) -> Result<Outcome, String> {
         loudness_method: "EBU R128 integrated loudness (ITU-R BS.1770-4 K-weighting and gating), true peak \
                           by 4x oversampling, via the ebur128 crate; mono files are measured as one channel"
             .into(),
-        input_volts_at_full_scale: plan.volts_at_full_scale,
+        input_volts_at_full_scale: plan.calibration.volts_at_full_scale,
+        input_dbu_at_full_scale: plan.calibration.dbu(),
+        input_calibration_source: plan.calibration.source.clone(),
         tone: report::ToneSetup {
             frequency_hz: tone::TONE_HZ,
             peak_volts_at_jack: plan.tone_peak_volts,
             sample_rate: tone::TONE_RATE,
             seconds: tone::TONE_SECONDS,
             analysed_seconds: tone::ANALYSED_SECONDS,
-            highest_harmonic: variants.first().map_or(0, |v| v.tone.highest_harmonic),
-            band_hz: tone::BAND_HZ,
+            highest_harmonic: *breakdown_dsp::measure::THD_F_HARMONICS.end(),
             method: tone::method(),
         },
         threshold_current_amps: THRESHOLD_CURRENT,
         clamped_current_amps: CLAMPED_CURRENT,
         variants,
-        di: di_infos,
+        di,
         safety: report::SAFETY.into(),
-    };
-    let html = report::html::render(&report)?;
+    }
+}
+
+/// Write the report three ways, the caller's extra files and the manifest into the temporary folder.
+fn write_report(temp: &Path, report: &Report, options: &Options) -> Result<(), String> {
+    let html = report::html::render(report)?;
     for (name, body) in [
         ("report.html", html),
         ("report.json", report.to_json()),
         ("report.csv", report.to_csv()),
     ] {
-        std::fs::write(temp_path.join(name), body)
-            .map_err(|e| format!("cannot write {name}: {e}"))?;
+        std::fs::write(temp.join(name), body).map_err(|e| format!("cannot write {name}: {e}"))?;
     }
     for (rel, bytes) in &options.extra_files {
-        let path = temp_path.join(rel);
+        let path = temp.join(rel);
         if let Some(parent) = path.parent() {
             std::fs::create_dir_all(parent)
                 .map_err(|e| format!("cannot create '{}': {e}", parent.display()))?;
@@ -768,6 +887,71 @@ pub fn run_plan(plan_path: &Path, options: Options) -> Result<Outcome, String> {
         std::fs::write(&path, bytes)
             .map_err(|e| format!("cannot write '{}': {e}", path.display()))?;
     }
+    write_manifest(temp)
+}
+
+/// Run a plan file. All checks happen before the first sample is rendered.
+pub fn run_plan(plan_path: &Path, options: Options) -> Result<Outcome, String> {
+    let started = Instant::now();
+    let mut plan = plan::load(plan_path, options.output.as_deref())?;
+    if let Some(c) = &options.calibration {
+        plan.set_calibration(c.clone())?;
+    }
+    check_size_of_run(&plan)?;
+    check_output(&plan.output, &plan_inputs(&plan)).map_err(|e| match plan.output_line {
+        Some(line) => format!("{} line {line}: {e}", plan.path.display()),
+        None => e,
+    })?;
+    let inputs = read_inputs(&plan)?;
+    let mut variants = variant_infos(&plan)?;
+
+    files::remove_stale(&plan.output);
+    let mut temp = Temporary::new(files::sibling(&plan.output, files::PARTIAL_TAG));
+    let _ = std::fs::remove_dir_all(&temp.path);
+    std::fs::create_dir_all(temp.path.join("unmatched"))
+        .map_err(|e| format!("cannot create '{}': {e}", temp.path.display()))?;
+
+    let (scopes, layouts) = layouts_of(&plan, &inputs);
+    let clips: Vec<Mutex<Vec<Vec<f32>>>> = inputs
+        .iter()
+        .map(|a| Mutex::new(vec![vec![0.0f32; a.frames()]; a.channels.len()]))
+        .collect();
+    let (jobs, total, rendered_samples) = schedule(&plan, &inputs);
+    let progress = progress_bar(total);
+    let cores = std::thread::available_parallelism().map_or(1, |n| n.get());
+    let threads = options.jobs.unwrap_or(cores).min(jobs.len()).max(1);
+    let cancel = AtomicBool::new(false);
+    let shared = Shared {
+        plan: &plan,
+        inputs: &inputs,
+        scopes: &scopes,
+        layouts: &layouts,
+        clips: &clips,
+        temp: &temp.path,
+        progress: &progress,
+        cancel: &cancel,
+    };
+    let show = !options.quiet && std::io::stderr().is_terminal();
+    let results = execute(&shared, &jobs, threads, show)?;
+
+    let mut per_di: Vec<Vec<Option<DiResult>>> = inputs
+        .iter()
+        .map(|_| plan.variants.iter().map(|_| None).collect())
+        .collect();
+    for (job, r) in jobs.iter().zip(results) {
+        match (job, r) {
+            (Job::Tone { variant }, JobResult::Tone(t)) => variants[*variant].tone = t,
+            (Job::Render { di, variant }, JobResult::Render(d)) => per_di[*di][*variant] = Some(*d),
+            _ => return Err("a render job gave the wrong kind of result".into()),
+        }
+    }
+    let mut di_infos = Vec::new();
+    for (i, (input, results)) in inputs.iter().zip(per_di).enumerate() {
+        let results = results.into_iter().flatten().collect();
+        di_infos.push(finish_di(&plan, i, input, results, &shared)?);
+    }
+    let report = build_report(&plan, &options, variants, di_infos);
+    write_report(&temp.path, &report, &options)?;
     install(&mut temp, &plan.output)?;
     Ok(Outcome {
         output: plan.output.clone(),

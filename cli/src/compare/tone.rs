@@ -1,8 +1,10 @@
-//! The test-tone readout: THD_F of a steady 1 kHz tone at the wiper, with the harmonic count and band stated.
+//! The test-tone readout: THD_F of a steady 1 kHz tone at the wiper, counting harmonics 2-10
+//! (`breakdown_dsp::measure::thd_f`, the project's one definition).
 
 use super::plan::Variant;
 use crate::report::ToneResult;
-use breakdown_dsp::measure::{self, Distortion};
+use breakdown_dsp::measure::{self, Distortion, THD_F_DEFINITION};
+use breakdown_dsp::units::gain_to_db;
 use breakdown_dsp::{Engine, Probe};
 
 /// Test tone frequency (Hz), sample rate (Hz), length and the analysed tail (s): the start is left out so the
@@ -11,17 +13,12 @@ pub const TONE_HZ: f64 = 1000.0;
 pub const TONE_RATE: f64 = 48_000.0;
 pub const TONE_SECONDS: f64 = 1.0;
 pub const ANALYSED_SECONDS: f64 = 0.25;
-/// Harmonics are counted up to this frequency (Hz): the audio band.
-pub const BAND_HZ: f64 = 20_000.0;
 
 /// Method text for the report.
 pub fn method() -> String {
     format!(
-        "THD_F = sqrt(sum of harmonic amplitudes squared) / fundamental amplitude (IEC 61000-2-2 style), \
-         harmonics 2 to {} (every harmonic up to {} Hz), measured at the level pot wiper on the last {} s of a \
-         {} s, {} Hz tone rendered at {} kHz, by single-bin DFTs over a whole number of periods.",
-        (BAND_HZ / TONE_HZ).floor(),
-        BAND_HZ,
+        "{THD_F_DEFINITION}; measured at the level pot wiper on the last {} s of a {} s, {} Hz tone rendered at \
+         {} kHz, by single-bin DFTs over a whole number of periods.",
         ANALYSED_SECONDS,
         TONE_SECONDS,
         TONE_HZ,
@@ -29,22 +26,18 @@ pub fn method() -> String {
     )
 }
 
-/// THD_F readout of a steady tone: every harmonic of `fundamental` below `band_hz` (and below Nyquist), plus
-/// the level of harmonics 1..=N relative to the fundamental (dB).
-pub fn readout(
-    signal: &[f64],
-    rate: f64,
-    fundamental: f64,
-    band_hz: f64,
-) -> (Distortion, Vec<f64>) {
-    let d = measure::distortion(signal, rate, fundamental, usize::MAX, band_hz);
-    let amps = measure::harmonic_amplitudes(signal, rate, fundamental, d.harmonics);
+/// THD_F readout of a steady tone (harmonics 2-10), plus the level of harmonics 1..=10 relative to the
+/// fundamental (dB; -inf for a harmonic above Nyquist or absent).
+pub fn readout(signal: &[f64], rate: f64, fundamental: f64) -> (Distortion, Vec<f64>) {
+    let d = measure::thd_f(signal, rate, fundamental);
+    let amps =
+        measure::harmonic_amplitudes(signal, rate, fundamental, *measure::THD_F_HARMONICS.end());
     let first = amps.first().copied().unwrap_or(0.0);
     let db = amps
         .iter()
         .map(|a| {
-            if first > 0.0 && *a > 0.0 {
-                20.0 * (a / first).log10()
+            if first > 0.0 {
+                gain_to_db(a / first)
             } else {
                 f64::NEG_INFINITY
             }
@@ -89,11 +82,10 @@ pub fn run(
         }
     }
     let meters = *engine.meters();
-    let (d, harmonics_db) = readout(&wiper, TONE_RATE, TONE_HZ, BAND_HZ);
+    let (d, harmonics_db) = readout(&wiper, TONE_RATE, TONE_HZ);
     Ok(ToneResult {
         thd_f_percent: d.thd_f * 100.0,
         highest_harmonic: d.harmonics,
-        band_hz: d.band_hz,
         even_share_percent: d.even_share * 100.0,
         fundamental_wiper_volts: d.fundamental_amplitude,
         harmonics_db,
@@ -107,59 +99,33 @@ mod tests {
     use super::*;
     use std::f64::consts::PI;
 
-    // Sampled at 200 kHz with 200 samples per period, so every aliased component falls on a harmonic bin and
-    // counting all harmonics below Nyquist gives the full series.
-    const RATE: f64 = 200_000.0;
-
-    fn wave(shape: impl Fn(f64) -> f64) -> Vec<f64> {
-        (0..20_000)
-            .map(|n| shape(2.0 * PI * TONE_HZ * n as f64 / RATE))
-            .collect()
-    }
-
     #[test]
-    fn hard_clipped_sine_reads_23_29_percent() {
-        // BRIEF section 6 (computed from the Fourier series): a sine hard-clipped at +/-0.5 of its peak has
-        // THD_F = 23.29 %; a symmetric clip has no even harmonics.
-        let (d, db) = readout(
-            &wave(|p| p.sin().clamp(-0.5, 0.5)),
-            RATE,
-            TONE_HZ,
-            RATE / 2.0,
-        );
-        assert!(
-            (d.thd_f * 100.0 - 23.29).abs() < 0.05,
-            "{}",
-            d.thd_f * 100.0
-        );
-        assert!(d.even_share < 1e-6);
-        assert_eq!(d.harmonics, 100);
-        assert_eq!(db[0], 0.0);
-    }
-
-    #[test]
-    fn square_wave_reads_48_34_percent() {
-        // Square wave: harmonics 4/(pi k) for odd k, THD_F = sqrt(pi^2/8 - 1) = 48.34 % (BRIEF section 6).
-        // Built from the sample index (100 samples high, 100 low) so no sample lands on a rounding-noise zero.
+    fn readout_counts_harmonics_2_to_10_and_levels_them() {
+        // Square wave: odd harmonics 4 / (pi k) (its Fourier series), so harmonic 3 sits at 20 log10(1/3) =
+        // -9.54 dB, harmonic 2 is absent, and THD_F over 2-10 is sqrt(1/9 + 1/25 + 1/49 + 1/81) = 42.88 %.
+        let rate = 200_000.0;
         let square: Vec<f64> = (0..20_000)
             .map(|n| if n % 200 < 100 { 1.0 } else { -1.0 })
             .collect();
-        let (d, _) = readout(&square, RATE, TONE_HZ, RATE / 2.0);
+        let (d, db) = readout(&square, rate, TONE_HZ);
+        assert_eq!(d.harmonics, 10);
+        assert_eq!(db.len(), 10);
+        assert!((db[2] + 9.542).abs() < 0.01, "{}", db[2]);
+        assert!(db[1] < -100.0, "{}", db[1]);
         assert!(
-            (d.thd_f * 100.0 - 48.34).abs() < 0.05,
+            (d.thd_f * 100.0 - 42.88).abs() < 0.05,
             "{}",
             d.thd_f * 100.0
         );
     }
 
     #[test]
-    fn band_limit_counts_only_harmonics_in_band() {
-        // At 48 kHz with a 20 kHz band, harmonics 2..=20 of 1 kHz are counted (20 kHz / 1 kHz).
+    fn pure_sine_reads_no_distortion_at_48_khz() {
         let s: Vec<f64> = (0..48_000)
             .map(|n| (2.0 * PI * TONE_HZ * n as f64 / TONE_RATE).sin())
             .collect();
-        let (d, _) = readout(&s, TONE_RATE, TONE_HZ, BAND_HZ);
-        assert_eq!(d.harmonics, 20);
+        let (d, _) = readout(&s, TONE_RATE, TONE_HZ);
+        assert_eq!(d.harmonics, 10);
         assert!(d.thd_f < 1e-6);
     }
 }

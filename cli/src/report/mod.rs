@@ -7,12 +7,8 @@ pub mod plots;
 use crate::compare::loudness::MatchReport;
 use serde::Serialize;
 
-/// Safety cautions carried by every report (BRIEF section 8).
-pub const SAFETY: &str = "Valve amplifiers run at several hundred volts and their filter capacitors stay \
-charged after power-off; the numbers this tool prints are a simulation, not a measurement of a live chassis. \
-Work on a live amp only with the training to do so; drain and verify capacitors; follow local electrical \
-codes; when in doubt, have a qualified technician do the work. Check part voltage and power ratings against \
-the values the tool reports with margin.";
+/// Safety cautions carried by every report (docs/model.md section 8).
+pub const SAFETY: &str = safety_text!();
 
 /// The whole report.
 #[derive(Clone, Debug, Serialize)]
@@ -25,6 +21,10 @@ pub struct Report {
     pub loudness_method: String,
     /// Peak volts at the input jack for a 0 dBFS sample.
     pub input_volts_at_full_scale: f64,
+    /// The same calibration as "0 dBFS = X dBu" (a full-scale sine; 0 dBu = 0.775 V rms).
+    pub input_dbu_at_full_scale: f64,
+    /// Where the calibration came from (the command line, the plan or the circuit file).
+    pub input_calibration_source: String,
     pub tone: ToneSetup,
     /// Pair current at which the clamp thresholds are read (A).
     pub threshold_current_amps: f64,
@@ -43,9 +43,8 @@ pub struct ToneSetup {
     pub sample_rate: f64,
     pub seconds: f64,
     pub analysed_seconds: f64,
-    /// Highest harmonic counted (harmonics 2..=this).
+    /// Highest harmonic counted (harmonics 2..=this; 10 everywhere, `breakdown_dsp::measure::THD_F_HARMONICS`).
     pub highest_harmonic: usize,
-    pub band_hz: f64,
     pub method: String,
 }
 
@@ -79,7 +78,6 @@ pub struct PartInfo {
 pub struct ToneResult {
     pub thd_f_percent: f64,
     pub highest_harmonic: usize,
-    pub band_hz: f64,
     /// Share of harmonic energy in even harmonics (%); 50 = balanced.
     pub even_share_percent: f64,
     pub fundamental_wiper_volts: f64,
@@ -143,6 +141,39 @@ pub struct PartLoad {
     pub rating_watts: f64,
     /// Average dissipation as a share of the rating (%).
     pub average_share_of_rating_percent: f64,
+    /// Rating / average dissipation ("12.0x"); None when nothing flows.
+    pub margin: Option<f64>,
+    /// "ok", "thin" or "over the rating" (`crate::analysis::ratings::Verdict`).
+    pub state: String,
+}
+
+impl PartLoad {
+    pub fn new(average_watts: f64, peak_watts: f64, rating_watts: f64) -> PartLoad {
+        use crate::analysis::ratings::Verdict;
+        let margin = (average_watts > 1e-9).then(|| rating_watts / average_watts);
+        PartLoad {
+            average_watts,
+            peak_watts,
+            rating_watts,
+            average_share_of_rating_percent: average_watts / rating_watts * 100.0,
+            margin,
+            state: Verdict::from_margin(margin.unwrap_or(f64::INFINITY))
+                .label()
+                .to_string(),
+        }
+    }
+
+    /// "12.0x ok", "no load".
+    pub fn margin_text(&self) -> String {
+        match self.margin {
+            Some(m) => format!(
+                "{} {}",
+                crate::analysis::ratings::margin_text(m),
+                self.state
+            ),
+            None => "no load".into(),
+        }
+    }
 }
 
 /// One segment of an A/B clip.
@@ -155,15 +186,340 @@ pub struct AbSegment {
     pub end_seconds: f64,
 }
 
-fn opt(v: Option<f64>, digits: usize) -> String {
-    v.map(|x| format!("{x:.digits$}")).unwrap_or_default()
+/// One cell of a report table, before it is written as CSV or HTML.
+#[derive(Clone, Debug, PartialEq)]
+pub enum Cell {
+    /// A number with this many decimals (not finite: empty in CSV, "n/a"/"-inf" in HTML).
+    Number(f64, usize),
+    /// A loudness measurement of a silent file: "silent", never a number.
+    Silent,
+    Text(String),
+    /// Nothing to say (no part at this position).
+    None,
 }
 
-fn num(x: f64, digits: usize) -> String {
-    if x.is_finite() {
-        format!("{x:.digits$}")
+impl Cell {
+    pub fn csv(&self) -> String {
+        match self {
+            Cell::Number(x, d) if x.is_finite() => format!("{x:.d$}"),
+            Cell::Number(..) | Cell::None => String::new(),
+            Cell::Silent => "silent".into(),
+            Cell::Text(t) => csv_field(t),
+        }
+    }
+}
+
+/// The report tables that share the column list.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub enum Table {
+    /// One row per variant: parts and settings.
+    Variants,
+    /// One row per variant: the test tone.
+    Tone,
+    /// One row per DI and variant: the clamp and the loudness matching.
+    Di,
+    /// One row per DI and variant: what the Zeners see.
+    Zener,
+    /// In the CSV only.
+    CsvOnly,
+}
+
+/// What a column reads from: the variant, and for per-DI tables the DI's result.
+pub struct Row<'a> {
+    pub variant: &'a VariantInfo,
+    pub di: Option<(&'a DiInfo, &'a DiResult)>,
+}
+
+/// One column of the report, written once for HTML and CSV.
+pub struct Column {
+    /// CSV header (snake case with the unit).
+    pub csv: &'static str,
+    /// HTML header (may hold entities).
+    pub html: &'static str,
+    pub table: Table,
+    pub value: fn(&Row) -> Cell,
+}
+
+fn n(x: f64, d: usize) -> Cell {
+    Cell::Number(x, d)
+}
+fn on_di(r: &Row, f: impl Fn(&DiInfo, &DiResult) -> Cell) -> Cell {
+    r.di.map_or(Cell::None, |(d, x)| f(d, x))
+}
+/// A loudness figure of a matching: "silent" when the file was too quiet to measure.
+fn loud(r: &Row, f: impl Fn(&MatchReport) -> f64) -> Cell {
+    on_di(r, |_, x| {
+        if x.matching.silent {
+            Cell::Silent
+        } else {
+            n(f(&x.matching), 2)
+        }
+    })
+}
+fn zener(r: &Row, f: impl Fn(&ZenerLoad) -> Cell) -> Cell {
+    on_di(r, |_, x| x.zener.as_ref().map_or(Cell::None, &f))
+}
+fn part(r: &Row, positive: bool, f: impl Fn(&PartLoad) -> Cell) -> Cell {
+    zener(r, |z| {
+        let p = if positive { &z.positive } else { &z.negative };
+        p.as_ref().map_or(Cell::None, &f)
+    })
+}
+fn opt_cell(v: Option<f64>, d: usize) -> Cell {
+    v.map_or(Cell::None, |x| n(x, d))
+}
+
+/// Every column of the report, in CSV order; the HTML tables take theirs from the same list.
+pub fn columns() -> Vec<Column> {
+    use Table::*;
+    vec![
+        Column {
+            csv: "di",
+            html: "DI",
+            table: CsvOnly,
+            value: |r| on_di(r, |d, _| Cell::Text(d.name.clone())),
+        },
+        Column {
+            csv: "variant",
+            html: "variant",
+            table: Variants,
+            value: |r| Cell::Text(r.variant.name.clone()),
+        },
+        Column {
+            csv: "parts",
+            html: "parts",
+            table: Variants,
+            value: |r| Cell::Text(r.variant.parts.clone()),
+        },
+        Column {
+            csv: "gain",
+            html: "gain",
+            table: Variants,
+            value: |r| n(r.variant.gain, 3),
+        },
+        Column {
+            csv: "level",
+            html: "level",
+            table: Variants,
+            value: |r| n(r.variant.level, 3),
+        },
+        Column {
+            csv: "quality",
+            html: "oversampling",
+            table: Variants,
+            value: |r| Cell::Text(format!("{}x", r.variant.quality)),
+        },
+        Column {
+            csv: "conducts_at_positive_V",
+            html: "conducts at + (V)",
+            table: Variants,
+            value: |r| opt_cell(r.variant.threshold_positive_volts, 3),
+        },
+        Column {
+            csv: "conducts_at_negative_V",
+            html: "conducts at &minus; (V)",
+            table: Variants,
+            value: |r| opt_cell(r.variant.threshold_negative_volts, 3),
+        },
+        Column {
+            csv: "thd_f_percent",
+            html: "THD<sub>F</sub> (%)",
+            table: Tone,
+            value: |r| n(r.variant.tone.thd_f_percent, 3),
+        },
+        Column {
+            csv: "thd_f_harmonics",
+            html: "harmonics counted",
+            table: Tone,
+            value: |r| Cell::Text(format!("2-{}", r.variant.tone.highest_harmonic)),
+        },
+        Column {
+            csv: "even_share_percent",
+            html: "even share (%)",
+            table: Tone,
+            value: |r| n(r.variant.tone.even_share_percent, 2),
+        },
+        Column {
+            csv: "tone_fundamental_wiper_V",
+            html: "fundamental at wiper (V peak)",
+            table: Tone,
+            value: |r| n(r.variant.tone.fundamental_wiper_volts, 3),
+        },
+        Column {
+            csv: "tone_clamp_level_positive_V",
+            html: "clamp level + (V)",
+            table: Tone,
+            value: |r| n(r.variant.tone.clamp_peak_positive_volts, 3),
+        },
+        Column {
+            csv: "tone_clamp_level_negative_V",
+            html: "clamp level &minus; (V)",
+            table: Tone,
+            value: |r| n(r.variant.tone.clamp_peak_negative_volts, 3),
+        },
+        Column {
+            csv: "clamp_level_positive_V",
+            html: "clamp level + (V)",
+            table: Di,
+            value: |r| on_di(r, |_, x| n(x.clamp_peak_positive_volts, 3)),
+        },
+        Column {
+            csv: "clamp_level_negative_V",
+            html: "clamp level &minus; (V)",
+            table: Di,
+            value: |r| on_di(r, |_, x| n(x.clamp_peak_negative_volts, 3)),
+        },
+        Column {
+            csv: "clamp_peak_to_peak_V",
+            html: "peak-to-peak (V)",
+            table: Di,
+            value: |r| on_di(r, |_, x| n(x.clamp_peak_to_peak_volts, 3)),
+        },
+        Column {
+            csv: "share_clamped_percent",
+            html: "time clamped (%)",
+            table: Di,
+            value: |r| on_di(r, |_, x| n(x.share_clamped_percent, 3)),
+        },
+        Column {
+            csv: "loudness_before_LUFS",
+            html: "loudness before matching (LUFS)",
+            table: Di,
+            value: |r| loud(r, |m| m.loudness_before_lufs),
+        },
+        Column {
+            csv: "true_peak_before_dBTP",
+            html: "true peak before (dBTP)",
+            table: Di,
+            value: |r| loud(r, |m| m.true_peak_before_dbtp),
+        },
+        Column {
+            csv: "crest_factor_dB",
+            html: "crest factor (dB)",
+            table: Di,
+            value: |r| on_di(r, |_, x| n(x.crest_factor_db, 2)),
+        },
+        Column {
+            csv: "match_gain_dB",
+            html: "matching gain (dB)",
+            table: Di,
+            value: |r| loud(r, |m| m.gain_db),
+        },
+        Column {
+            csv: "limited",
+            html: "true-peak limiting",
+            table: Di,
+            value: |r| on_di(r, |_, x| Cell::Text(limiting_text(&x.matching))),
+        },
+        Column {
+            csv: "limiter_max_reduction_dB",
+            html: "limiter max reduction (dB)",
+            table: CsvOnly,
+            value: |r| loud(r, |m| m.limiter_max_reduction_db),
+        },
+        Column {
+            csv: "loudness_after_LUFS",
+            html: "after matching (LUFS)",
+            table: Di,
+            value: |r| loud(r, |m| m.loudness_after_lufs),
+        },
+        Column {
+            csv: "true_peak_after_dBTP",
+            html: "after matching (dBTP)",
+            table: Di,
+            value: |r| loud(r, |m| m.true_peak_after_dbtp),
+        },
+        Column {
+            csv: "zener_peak_current_mA",
+            html: "peak current (mA)",
+            table: Zener,
+            value: |r| zener(r, |z| n(z.peak_current_ma, 4)),
+        },
+        Column {
+            csv: "zener_rms_current_mA",
+            html: "RMS current (mA)",
+            table: Zener,
+            value: |r| zener(r, |z| n(z.rms_current_ma, 4)),
+        },
+        Column {
+            csv: "positive_average_W",
+            html: "+ part average (W)",
+            table: Zener,
+            value: |r| part(r, true, |p| n(p.average_watts, 6)),
+        },
+        Column {
+            csv: "positive_peak_W",
+            html: "+ part peak (W)",
+            table: Zener,
+            value: |r| part(r, true, |p| n(p.peak_watts, 6)),
+        },
+        Column {
+            csv: "positive_margin",
+            html: "+ part margin",
+            table: Zener,
+            value: |r| part(r, true, |p| Cell::Text(p.margin_text())),
+        },
+        Column {
+            csv: "negative_average_W",
+            html: "&minus; part average (W)",
+            table: Zener,
+            value: |r| part(r, false, |p| n(p.average_watts, 6)),
+        },
+        Column {
+            csv: "negative_peak_W",
+            html: "&minus; part peak (W)",
+            table: Zener,
+            value: |r| part(r, false, |p| n(p.peak_watts, 6)),
+        },
+        Column {
+            csv: "negative_margin",
+            html: "&minus; part margin",
+            table: Zener,
+            value: |r| part(r, false, |p| Cell::Text(p.margin_text())),
+        },
+        Column {
+            csv: "rating_W",
+            html: "rating (W)",
+            table: Zener,
+            value: |r| {
+                zener(r, |z| {
+                    opt_cell(
+                        z.positive
+                            .as_ref()
+                            .or(z.negative.as_ref())
+                            .map(|p| p.rating_watts),
+                        2,
+                    )
+                })
+            },
+        },
+        Column {
+            csv: "matched_file",
+            html: "matched clip",
+            table: CsvOnly,
+            value: |r| on_di(r, |_, x| Cell::Text(x.matched_file.clone())),
+        },
+        Column {
+            csv: "unmatched_file",
+            html: "unmatched render",
+            table: CsvOnly,
+            value: |r| on_di(r, |_, x| Cell::Text(x.unmatched_file.clone())),
+        },
+    ]
+}
+
+/// "no", "yes" (with how much), or "silent: not matched".
+pub fn limiting_text(m: &MatchReport) -> String {
+    if m.silent {
+        "silent: not matched".into()
+    } else if m.limited {
+        format!(
+            "yes: {:.1} dB max, {:.2}% of the time",
+            m.limiter_max_reduction_db,
+            m.limiter_active_share * 100.0
+        )
     } else {
-        String::new()
+        "no".into()
     }
 }
 
@@ -185,96 +541,22 @@ impl Report {
         serde_json::to_string_pretty(self).unwrap_or_else(|e| format!("{{\"error\": \"{e}\"}}"))
     }
 
-    /// CSV text: one row per DI and variant, every number of the report.
+    /// CSV text: one row per DI and variant, every column of [`columns`].
     pub fn to_csv(&self) -> String {
-        let header = [
-            "di",
-            "variant",
-            "parts",
-            "gain",
-            "level",
-            "quality",
-            "threshold_positive_V",
-            "threshold_negative_V",
-            "clamp_peak_positive_V",
-            "clamp_peak_negative_V",
-            "clamp_peak_to_peak_V",
-            "share_clamped_percent",
-            "loudness_before_LUFS",
-            "true_peak_before_dBTP",
-            "crest_factor_dB",
-            "match_gain_dB",
-            "limited",
-            "limiter_max_reduction_dB",
-            "loudness_after_LUFS",
-            "true_peak_after_dBTP",
-            "thd_f_percent",
-            "thd_highest_harmonic",
-            "thd_band_Hz",
-            "even_share_percent",
-            "zener_peak_current_mA",
-            "zener_rms_current_mA",
-            "positive_average_W",
-            "positive_peak_W",
-            "negative_average_W",
-            "negative_peak_W",
-            "rating_W",
-            "matched_file",
-            "unmatched_file",
-        ];
-        let mut out = header.join(",");
+        let cols = columns();
+        let mut out = cols.iter().map(|c| c.csv).collect::<Vec<_>>().join(",");
         out.push('\n');
         for di in &self.di {
             for r in &di.results {
                 let Some(v) = self.variant(&r.variant) else {
                     continue;
                 };
-                let z = r.zener.as_ref();
-                let part = |p: Option<&PartLoad>, peak: bool| {
-                    p.map(|p| num(if peak { p.peak_watts } else { p.average_watts }, 6))
-                        .unwrap_or_default()
+                let row = Row {
+                    variant: v,
+                    di: Some((di, r)),
                 };
-                let rating = z
-                    .and_then(|z| z.positive.as_ref().or(z.negative.as_ref()))
-                    .map(|p| num(p.rating_watts, 2))
-                    .unwrap_or_default();
-                let m = &r.matching;
-                let row = [
-                    csv_field(&di.name),
-                    csv_field(&v.name),
-                    csv_field(&v.parts),
-                    num(v.gain, 3),
-                    num(v.level, 3),
-                    v.quality.to_string(),
-                    opt(v.threshold_positive_volts, 3),
-                    opt(v.threshold_negative_volts, 3),
-                    num(r.clamp_peak_positive_volts, 3),
-                    num(r.clamp_peak_negative_volts, 3),
-                    num(r.clamp_peak_to_peak_volts, 3),
-                    num(r.share_clamped_percent, 3),
-                    num(m.loudness_before_lufs, 2),
-                    num(m.true_peak_before_dbtp, 2),
-                    num(r.crest_factor_db, 2),
-                    num(m.gain_db, 2),
-                    m.limited.to_string(),
-                    num(m.limiter_max_reduction_db, 2),
-                    num(m.loudness_after_lufs, 2),
-                    num(m.true_peak_after_dbtp, 2),
-                    num(v.tone.thd_f_percent, 3),
-                    v.tone.highest_harmonic.to_string(),
-                    num(v.tone.band_hz, 0),
-                    num(v.tone.even_share_percent, 2),
-                    z.map(|z| num(z.peak_current_ma, 4)).unwrap_or_default(),
-                    z.map(|z| num(z.rms_current_ma, 4)).unwrap_or_default(),
-                    part(z.and_then(|z| z.positive.as_ref()), false),
-                    part(z.and_then(|z| z.positive.as_ref()), true),
-                    part(z.and_then(|z| z.negative.as_ref()), false),
-                    part(z.and_then(|z| z.negative.as_ref()), true),
-                    rating,
-                    csv_field(&r.matched_file),
-                    csv_field(&r.unmatched_file),
-                ];
-                out.push_str(&row.join(","));
+                let cells: Vec<String> = cols.iter().map(|c| (c.value)(&row).csv()).collect();
+                out.push_str(&cells.join(","));
                 out.push('\n');
             }
         }

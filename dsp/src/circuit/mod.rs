@@ -424,11 +424,6 @@ impl Circuit {
         Circuit::from_toml(BUILTIN_TOML).expect("built-in circuit parses")
     }
 
-    /// The circuit the model ran before whole preamps: the one-stage circuit (kept while the rest moves over).
-    pub fn reference() -> Circuit {
-        Circuit::one_stage()
-    }
-
     /// The one-stage circuit (`presets-demo/one-stage.toml`).
     pub fn one_stage() -> Circuit {
         Circuit::from_toml(ONE_STAGE_TOML).expect("one-stage circuit parses")

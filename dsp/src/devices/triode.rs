@@ -486,25 +486,6 @@ impl Triode {
         self.currents_with_q::<Separate>(vpk, vgk, q)
     }
 
-    /// `currents` of two triodes at once: both Q = 1 / sqrt(kvb + Vpk^2) come from one packed square root and
-    /// one packed division (the processor's divider is slow and shared), with the same correctly rounded
-    /// results as two scalar ones. Crate-private: `A = Fused` needs FMA, which only the engine checks for.
-    #[inline(always)]
-    pub(crate) fn currents_of_two<A: Arith>(
-        (first, first_vpk, first_vgk): (&Triode, f64, f64),
-        (second, second_vpk, second_vgk): (&Triode, f64, f64),
-    ) -> [TriodeCurrents; 2] {
-        let radicands = [
-            A::madd(first_vpk, first_vpk, first.kvb),
-            A::madd(second_vpk, second_vpk, second.kvb),
-        ];
-        let [first_q, second_q] = crate::packed::reciprocal_square_roots(radicands);
-        [
-            first.currents_with_q::<A>(first_vpk, first_vgk, first_q),
-            second.currents_with_q::<A>(second_vpk, second_vgk, second_q),
-        ]
-    }
-
     /// `currents` given Q = 1 / sqrt(kvb + Vpk^2).
     #[inline(always)]
     fn currents_with_q<A: Arith>(&self, vpk: f64, vgk: f64, q: f64) -> TriodeCurrents {

@@ -1,5 +1,6 @@
-//! Shared by the host-level plugin tests (`clap_host.rs`, `vst3_host.rs`): find or build the plugin bundles, a
-//! DI-like test signal, and the `breakdown-dsp` rendering the plugin's output must equal.
+//! Shared by the host-level plugin tests (`clap_host.rs`, `vst3_host.rs`, `soak.rs`): find or build the plugin
+//! bundles, a DI-like test signal, and the `breakdown-dsp` rendering the plugin's output must equal (on the
+//! built-in circuit, the plugin's default, or on any circuit a test loads into the plugin).
 
 #![allow(dead_code)]
 
@@ -73,7 +74,9 @@ fn newest_source() -> SystemTime {
         "plugin/Cargo.toml",
         "dsp/src",
         "dsp/Cargo.toml",
-        "presets-demo/reference-circuit.toml",
+        "presets-demo/builtin-preamp.toml",
+        "presets-demo/one-stage.toml",
+        "presets-demo/plugin",
         "Cargo.lock",
     ] {
         walk(&root.join(p), &mut newest);
@@ -185,40 +188,52 @@ pub struct PluginSettings {
     /// Gain pot rotation as the plugin holds it (a 32-bit float parameter).
     pub gain: f32,
     pub level: f32,
-    /// Index into the reference circuit's switch: 0 off, 1 = 20 V / 20 V (the plugin's Pair 1 default),
-    /// 2 = 18 V / 5.6 V (the plugin's Pair 2 default).
+    /// Switch position of the circuit, counted from 0 (the plugin's `position` parameter). On the built-in
+    /// circuit (presets-demo/builtin-preamp.toml): 0 off, 1 symmetric 20 V (the plugin's default), 2 asymmetric
+    /// 18 V / 5.6 V (the default compare-with).
     pub position: usize,
     pub quality: Quality,
     /// Peak volts at the input jack for full scale.
-    pub input_calibration: f64,
+    pub volts_at_full_scale: f64,
 }
 
 impl Default for PluginSettings {
-    /// The plugin's documented defaults (plugin/README.md): gain 0.8, level 0.5, Pair 1 (20 V / 20 V), 4x,
-    /// input calibration 1 V.
+    /// The plugin's documented defaults (plugin/README.md): gain 0.8, level 0.5, position 1 (20 V / 20 V on
+    /// the built-in circuit), 4x, volts at full scale 1 V.
     fn default() -> Self {
         PluginSettings {
             gain: 0.8,
             level: 0.5,
             position: 1,
             quality: Quality::X4,
-            input_calibration: 1.0,
+            volts_at_full_scale: 1.0,
         }
     }
 }
 
-/// What the `breakdown-dsp` model renders for `input` at the wiper listening point (latency removed).
+/// What the `breakdown-dsp` model renders for `input` on the built-in circuit (the plugin's default) at the
+/// wiper listening point (latency removed), and the model's latency.
 pub fn reference_render(rate: f64, s: PluginSettings, input: &[f32]) -> (Vec<f32>, usize) {
-    let mut circuit = Circuit::reference();
-    circuit.input.volts_at_full_scale = s.input_calibration;
+    reference_render_on(&Circuit::builtin(), rate, s, input)
+}
+
+/// What the `breakdown-dsp` model renders for `input` on `circuit` with the plugin's settings (its volts at
+/// full scale replacing the file's, as the plugin's parameter does), latency removed, and the model's latency.
+pub fn reference_render_on(
+    circuit: &Circuit,
+    rate: f64,
+    s: PluginSettings,
+    input: &[f32],
+) -> (Vec<f32>, usize) {
+    let mut circuit = circuit.clone();
+    circuit.input.volts_at_full_scale = s.volts_at_full_scale;
     let settings = Settings {
         gain: s.gain as f64,
         level: s.level as f64,
         position: s.position,
         ..Default::default()
     };
-    let mut engine =
-        Engine::new(&circuit, rate, s.quality, settings).expect("reference circuit builds");
+    let mut engine = Engine::new(&circuit, rate, s.quality, settings).expect("the circuit builds");
     let latency = engine.latency();
     (engine.render(input, Probe::Listen), latency)
 }
