@@ -19,13 +19,17 @@ Usage: python3 references/gen.py [--out DIR] [--cases NAME,NAME] [--jobs N] [--r
 With --out, netlists and data go to DIR/<case>/ instead of beside the case files (the cross-check test uses
 this to compare a fresh run with the committed data).
 
-Timing netlist for benchmarks (the same circuit at audio-rate settings, no data written):
-  python3 references/gen.py --timing CIRCUIT.toml --seconds S [--gain G] [--level L] [--position P]
-                            [--amplitude A] --out FILE.cir
+Timing mode for benchmarks (`breakdown bench`): ngspice on a circuit file driven by a DI-like input at
+audio-rate settings (output step and maximum step 1/48000 s, reltol 1e-3), nothing written:
+  python3 references/gen.py timing --circuit FILE.toml --seconds S [--amplitude V] [--gain G] [--level L]
+                                   [--position P] [--treble T] [--middle M] [--bass B] [--netlist FILE.cir]
+prints one JSON line on stdout, {"realtime_factor": X, "simulated_seconds": S, "cpu_seconds": T}, with
+realtime_factor = S / T and T = ngspice's own CPU time (user + system); exit 1 (message on stderr) on failure.
 """
 
 import argparse
 import concurrent.futures
+import json
 import math
 import operator
 import os
@@ -58,9 +62,14 @@ TAIL_SECONDS = 0.0006
 TOLERANCES = os.environ.get("BREAKDOWN_NGSPICE_TOLERANCES",
                             "reltol=1e-06 abstol=1e-9 vntol=1e-5 chgtol=1e-8 trtol=1")
 
-# Timing netlists: a 1 kHz sine at audio-rate step and a looser relative tolerance.
-TIMING_FREQUENCY = 1000.0
+# Timing mode: audio-rate step (1/48000 s) and a looser relative tolerance; a DI-like input of plucked notes
+# (open-string pitches E2 A2 D3 G3 in Hz, equal temperament from A4 = 440 Hz), each a fundamental and two
+# overtones (harmonic, weight, extra decay rate 1/s), scaled so the waveform peaks at --amplitude.
 TIMING_RELTOL = 1e-3
+TIMING_NOTE_SECONDS = 1.0
+TIMING_DECAY_SECONDS = 0.2
+TIMING_NOTES = (82.40689, 110.0, 146.83238, 195.99772)
+TIMING_PARTIALS = ((1, 1.0, 0.0), (2, 0.5, 10.0), (3, 0.3, 20.0))
 
 # Thermal voltage used by the Zener fit and model (docs/model.md section 4).
 VT = 0.025852
@@ -153,8 +162,8 @@ NETLIST_HEAD = """\
 * attenuator); s<k>grid, s<k>plate, s<k>cath, s<k>net (after the coupling cap), s<k>wiper or s<k>div (the
 * network's output), s<k>bplus = preamp stage k; g1, p1, k1 = gain stage grid, plate, cathode (gbplus its own
 * B+ when it has one); k2 = follower cathode; c1 = coupling cap output; top, w = level pot top and wiper;
-* m = between the two Zeners; tt, tone, bt, mt, sn = tone stack (treble top, output, bass top, middle top,
-* slope node); bplus = the top-level supply.
+* m = between the two Zeners; tt, tone, bt, mt, mw, sn = tone stack (treble top, output, bass top, middle top,
+* middle wiper, slope node); bplus = the top-level supply.
 .param vt={vt}
 .param gg=6.177e-4 xi=1.314 cg=9.901 ig0=8.025e-8
 .param vfx=1.0 abx=12
@@ -397,7 +406,7 @@ def build_circuit(name, circuit, settings, amplitude, frequency, table):
             desc += (f", volume {r(total)} ohm {law} at {rotation} ({turned}; y = {pot_fraction(law, rotation)!r})")
             body.append(f"RS{k}TOP {net} {out} {r(upper)}")
             body.append(f"RS{k}BOT {out} 0 {r(lower)}")
-            bright = optional_number(v, "bright_cap", vw, 0.0, 0.0)
+            bright = number(v, "bright_cap", vw, 0.0)  # required, 0 = none (as the Rust reader)
             if bright > 0.0:
                 desc += f", bright cap {r(bright)} F"
                 body.append(f"CS{k}BRIGHT {net} {out} {r(bright)}")
@@ -411,7 +420,7 @@ def build_circuit(name, circuit, settings, amplitude, frequency, table):
             series, shunt = number(d, "series", dw, 1.0), number(d, "shunt", dw, 1.0)
             desc += f", divider {r(series)} / {r(shunt)} ohm"
             body.append(f"RS{k}SER {net} {out} {r(series)}")
-            cap = optional_number(d, "series_cap", dw, 0.0, 0.0)
+            cap = number(d, "series_cap", dw, 0.0)  # required, 0 = none (as the Rust reader)
             if cap > 0.0:
                 desc += f", {r(cap)} F across the series leg"
                 body.append(f"CS{k}SER {net} {out} {r(cap)}")
@@ -489,18 +498,21 @@ def tone_stack_lines(t, settings, what):
     br, bl = pot("bass_pot")
     mr, ml = pot("middle_pot")
     t_up, t_down = pot_legs(tl, tr, settings["treble"])
-    b_up, _ = pot_legs(bl, br, settings["bass"])
-    _, m_down = pot_legs(ml, mr, settings["middle"])
+    _, b_leg = pot_legs(bl, br, settings["bass"])
+    m_up, m_down = pot_legs(ml, mr, settings["middle"])
     return [
-        f"* tone stack: treble {settings['treble']}, middle {settings['middle']}, bass {settings['bass']}",
+        f"* tone stack (docs/model.md section 3.1): treble {settings['treble']}, middle {settings['middle']}, "
+        f"bass {settings['bass']}",
         f"CTREB w tt {r(number(t, 'treble_cap', what, 1e-15))}",
         f"RTREBA tt tone {r(t_up)}",
         f"RTREBB tone bt {r(t_down)}",
         f"RSLOPE w sn {r(number(t, 'slope_resistor', what, 1.0))}",
         f"CBASS sn bt {r(number(t, 'bass_cap', what, 1e-15))}",
-        f"RBASS bt mt {r(b_up)}",
-        f"CMID sn mt {r(number(t, 'middle_cap', what, 1e-15))}",
-        f"RMID mt 0 {r(m_down)}",
+        "* bass pot as a variable resistor: top lug and wiper joined at bt, the leg R y to mt",
+        f"RBASS bt mt {r(b_leg)}",
+        f"CMID sn mw {r(number(t, 'middle_cap', what, 1e-15))}",
+        f"RMIDA mt mw {r(m_up)}",
+        f"RMIDB mw 0 {r(m_down)}",
         f"RTONE tone 0 {r(number(t, 'load_resistor', what, 1.0))}",
     ]
 
@@ -549,18 +561,49 @@ def build_netlist(name, circuit, case, table, refine, raw_name):
     return "\n".join(lines) + "\n", probes, samples, oversample
 
 
+def di_source_line(amplitude, seconds):
+    """A DI-like input at the jack: a plucked note every TIMING_NOTE_SECONDS, cycling through four open-string
+    pitches, each a fundamental with two decaying overtones, a 1 ms attack and a 0.2 s decay (a behavioural
+    source of `time`; it reaches amplitude volts peak near the start of each note)."""
+    period = TIMING_NOTE_SECONDS
+    tn = f"(time - {r(period)}*floor(time/{r(period)}))"
+    index = f"(floor(time/{r(period)}) - 4*floor(time/{r(4 * period)}))"
+    f0 = " : ".join(f"{index} < {i + 0.5} ? {r(f)}" for i, f in enumerate(TIMING_NOTES[:-1]))
+    f0 = f"({f0} : {r(TIMING_NOTES[-1])})"
+    env = f"(1 - exp(-{tn}/1e-3))*exp(-{tn}/{r(TIMING_DECAY_SECONDS)})"
+    partials = " + ".join(f"{r(w)}*exp(-{tn}*{r(d)})*sin({r(2 * math.pi * h)}*{f0}*{tn})"
+                          for h, w, d in TIMING_PARTIALS)
+    return f"BIN in 0 V = {{ {r(amplitude / di_peak())}*{env}*({partials}) }}"
+
+
+def di_peak():
+    """Largest magnitude of the DI-like waveform before scaling, sampled at 48 kHz over one cycle of notes."""
+    peak = 0.0
+    for i, f0 in enumerate(TIMING_NOTES):
+        for n in range(int(TIMING_NOTE_SECONDS * BASE_RATE)):
+            tn = n / BASE_RATE
+            env = (1 - math.exp(-tn / 1e-3)) * math.exp(-tn / TIMING_DECAY_SECONDS)
+            v = env * sum(w * math.exp(-tn * d) * math.sin(2 * math.pi * h * f0 * tn) for h, w, d in TIMING_PARTIALS)
+            peak = max(peak, abs(v))
+    return peak
+
+
 def timing_netlist(path, circuit, settings, amplitude, seconds, table):
-    """The same circuit driven by a 1 kHz sine at audio-rate settings (step 1/48000 s, reltol 1e-3), nothing
-    written: for timing `ngspice -b` against the model on the same circuit."""
+    """The circuit of `path` driven by a DI-like input (di_source_line) at audio-rate settings: output step and
+    maximum step 1/48000 s, reltol 1e-3, ngspice's other tolerances at their defaults; only the clamp node is kept."""
     name = os.path.basename(path)
-    body, _ = build_circuit(name, circuit, settings, amplitude, TIMING_FREQUENCY, table)
+    body, probes = build_circuit(name, circuit, settings, amplitude, TIMING_NOTES[0], table)
+    # build_circuit drives the jack with a sine source VIN; the timing netlist drives it with the DI-like source.
+    body = [di_source_line(amplitude, seconds) if line.startswith("VIN ") else line for line in body]
+    body = [line for line in body if not line.startswith("* input: ")]
     step = 1.0 / BASE_RATE
-    lines = [NETLIST_HEAD.format(vt=VT, source=f"{name} by --timing, for benchmarks")]
-    lines.append(f"* timing netlist: {seconds} s of a {TIMING_FREQUENCY} Hz sine, output step and maximum step "
-                 f"1/{int(BASE_RATE)} s, reltol {TIMING_RELTOL}, no data written")
+    lines = [NETLIST_HEAD.format(vt=VT, source=f"{name} by gen.py timing, for benchmarks")]
+    lines.append(f"* timing netlist: {seconds} s of a DI-like input ({amplitude} V peak, a note every "
+                 f"{TIMING_NOTE_SECONDS} s), output step and maximum step 1/{int(BASE_RATE)} s, "
+                 f"reltol {TIMING_RELTOL}")
     lines.extend(body)
-    lines.append(f".options method=trap reltol={TIMING_RELTOL} abstol=1e-12 vntol=1e-8 chgtol=1e-16 trtol=1 "
-                 "itl4=50 interp")
+    lines.append(f".options method=trap reltol={TIMING_RELTOL} itl4=50")
+    lines.append(f".save v({dict(probes)['clamp']})")
     lines.append(f".tran {r(step)} {r(seconds)} 0 {r(step)}")
     lines.append(".control")
     lines.append("run")
@@ -689,20 +732,38 @@ def run_case(name, out_root, refine, ngspice):
     return name, spice_seconds, cpu_seconds, time.monotonic() - started, peaks
 
 
-def timing_main(args):
-    """--timing: write a timing netlist for a circuit file."""
-    if not args.out or args.out == HERE:
-        print("gen.py --timing: give --out FILE.cir (the netlist to write)", file=sys.stderr)
-        return 2
-    if args.seconds is None or not 0.0 < args.seconds <= 600.0:
-        print("gen.py --timing: give --seconds S (0 < S <= 600), the simulated time", file=sys.stderr)
-        return 2
-    if not 0.0 <= args.amplitude <= 20.0:
-        print(f"gen.py --timing: --amplitude {args.amplitude}: expected 0 .. 20 V peak at the jack",
-              file=sys.stderr)
-        return 2
+def timing_main(argv):
+    """gen.py timing: run ngspice on a circuit file at audio-rate settings and print one JSON line."""
+    ap = argparse.ArgumentParser(
+        prog="gen.py timing",
+        description="Time ngspice on a circuit file driven by a DI-like input at audio-rate settings (output step "
+                    "and maximum step 1/48000 s, reltol 1e-3). Prints one JSON line: "
+                    '{"realtime_factor": X, "simulated_seconds": S, "cpu_seconds": T}, '
+                    "realtime_factor = simulated seconds / ngspice CPU seconds.")
+    ap.add_argument("--circuit", required=True, help="circuit file (docs/model.md section 5)")
+    ap.add_argument("--seconds", type=float, required=True, help="simulated seconds (0 < S <= 600)")
+    ap.add_argument("--amplitude", type=float, default=0.3, help="DI peak volts at the jack (default 0.3)")
+    ap.add_argument("--gain", type=float, default=0.8, help="gain setting 0..1 (default 0.8)")
+    ap.add_argument("--level", type=float, default=0.5, help="level setting 0..1 (default 0.5)")
+    ap.add_argument("--position", type=int, help="switch position (default: the first that holds parts)")
+    for knob in ("treble", "middle", "bass"):
+        ap.add_argument(f"--{knob}", type=float, default=DEFAULT_TONE, help=f"{knob} setting 0..1 (default 0.5)")
+    ap.add_argument("--netlist", help="also keep the netlist at this path (for reading; not needed to time)")
+    args = ap.parse_args(argv)
+
+    def fail(message, code=1):
+        print(f"gen.py timing: {message}", file=sys.stderr)
+        return code
+
+    if not math.isfinite(args.seconds) or not 0.0 < args.seconds <= 600.0:
+        return fail(f"--seconds {args.seconds}: expected 0 < S <= 600 (simulated seconds)", 2)
+    if not math.isfinite(args.amplitude) or not 0.0 <= args.amplitude <= 20.0:
+        return fail(f"--amplitude {args.amplitude}: expected 0 .. 20 V peak at the jack", 2)
+    ngspice = shutil.which("ngspice")
+    if ngspice is None:
+        return fail("ngspice is not on PATH (Debian: apt-get install ngspice)", 2)
     try:
-        with open(args.timing, "rb") as f:
+        with open(args.circuit, "rb") as f:
             circuit = tomllib.load(f)
         settings = {"gain": args.gain, "level": args.level, "treble": args.treble, "middle": args.middle,
                     "bass": args.bass}
@@ -710,40 +771,57 @@ def timing_main(args):
             if not 0.0 <= value <= 1.0:
                 raise CaseError(f"--{key} {value}: a pot rotation must be within 0 .. 1")
         positions = circuit.get("clamp", {}).get("position", [])
-        if args.position is None:
+        position = args.position
+        if position is None:
             # As the model's default: the first switch position that holds parts (0 when none does).
-            args.position = next((i for i, p in enumerate(positions) if "positive" in p or "negative" in p), 0)
-        settings["position"] = args.position
-        text = timing_netlist(args.timing, circuit, settings, args.amplitude, args.seconds, family_table())
-        write_atomically(args.out, text)
+            position = next((i for i, p in enumerate(positions) if "positive" in p or "negative" in p), 0)
+        settings["position"] = position
+        text = timing_netlist(args.circuit, circuit, settings, args.amplitude, args.seconds, family_table())
+        if args.netlist:
+            write_atomically(args.netlist, text)
     except (CaseError, OSError, tomllib.TOMLDecodeError) as e:
-        print(f"gen.py --timing: {e}", file=sys.stderr)
-        return 1
-    print(f"wrote {args.out}: {args.seconds} s at 1/{int(BASE_RATE)} s, time it with: ngspice -b {args.out}")
+        return fail(str(e))
+    except (KeyError, ValueError, TypeError, AttributeError) as e:
+        return fail(f"{args.circuit}: not a circuit this script can read ({type(e).__name__}: {e})")
+    with tempfile.TemporaryDirectory(prefix="breakdown-ngspice-timing-") as work:
+        with open(os.path.join(work, "timing.cir"), "w", encoding="utf-8") as f:
+            f.write(text)
+        log_path = os.path.join(work, "ngspice.log")
+        with open(log_path, "w", encoding="utf-8") as log:
+            proc = subprocess.Popen([ngspice, "-b", "timing.cir"], cwd=work, stdout=log, stderr=subprocess.STDOUT)
+            # os.wait4 gives this child's own CPU time (user + system), whatever else the machine is doing.
+            _, status, usage = os.wait4(proc.pid, 0)
+        code = os.waitstatus_to_exitcode(status)
+        with open(log_path, encoding="utf-8", errors="replace") as log:
+            log_text = log.read()
+    cpu = usage.ru_utime + usage.ru_stime
+    # ngspice may exit 0 after giving up half-way: look for its own failure messages too.
+    bad = [line for line in log_text.splitlines()
+           if "timestep too small" in line.lower() or "simulation(s) aborted" in line.lower()
+           or line.lower().startswith("error")]
+    if code != 0 or bad:
+        tail = "\n".join(line for line in log_text.splitlines()[-20:] if line.strip())
+        return fail(f"ngspice failed on {args.circuit} (exit {code}):\n{tail}")
+    if cpu <= 0.0:
+        return fail("ngspice reported no CPU time; cannot form a real-time factor")
+    print(json.dumps({"realtime_factor": args.seconds / cpu, "simulated_seconds": args.seconds,
+                      "cpu_seconds": cpu}))
     return 0
 
 
 def main():
-    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    if sys.argv[1:2] == ["timing"]:
+        return timing_main(sys.argv[2:])
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0],
+                                 epilog="python3 references/gen.py timing --help: the timing mode for benchmarks")
     ap.add_argument("--out", default=HERE,
-                    help="directory for <case>/netlist.cir and <case>/reference.csv; with --timing, the netlist")
+                    help="directory for <case>/netlist.cir and <case>/reference.csv")
     ap.add_argument("--cases", default="", help="comma-separated case names (default: every case)")
     ap.add_argument("--jobs", type=int, default=2, help="ngspice runs in parallel (default 2)")
     ap.add_argument("--refine", type=int, default=1,
                     help="multiply every case's output grid and internal step rate by N (default 1; 2 halves the "
                          "step, to check it is fine enough)")
-    ap.add_argument("--timing", metavar="CIRCUIT.toml",
-                    help="write a timing netlist of this circuit file to --out instead of regenerating cases")
-    ap.add_argument("--seconds", type=float, help="--timing: simulated seconds")
-    ap.add_argument("--amplitude", type=float, default=0.3, help="--timing: sine peak volts at the jack (0.3)")
-    ap.add_argument("--gain", type=float, default=0.8, help="--timing: gain setting (0.8)")
-    ap.add_argument("--level", type=float, default=0.5, help="--timing: level setting (0.5)")
-    ap.add_argument("--position", type=int, help="--timing: switch position (default: first with parts)")
-    for knob in ("treble", "middle", "bass"):
-        ap.add_argument(f"--{knob}", type=float, default=DEFAULT_TONE, help=f"--timing: {knob} (0.5)")
     args = ap.parse_args()
-    if args.timing:
-        return timing_main(args)
     ngspice = shutil.which("ngspice")
     if ngspice is None:
         print("gen.py: ngspice is not on PATH (Debian: apt-get install ngspice)", file=sys.stderr)
