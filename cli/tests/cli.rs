@@ -546,16 +546,50 @@ fn bad_input_gives_one_clear_line_and_no_file() {
     assert!(String::from_utf8_lossy(&result.stderr).contains("does not exist"));
 }
 
-/// `breakdown bench` runs and prints one row per quality (speed itself is not asserted: it is a benchmark).
+/// `breakdown bench --quick` prints the machine, one table row per quality, and every figure in it (costs,
+/// real-time factors, ratios) finite and positive. Speed itself is not asserted: it is a benchmark, and its
+/// ratios are read by people, not by tests.
 #[test]
-fn bench_prints_every_quality() {
-    let out = run(&["bench", "--seconds", "0.1"]);
+fn bench_quick_prints_a_finite_table() {
+    let out = run(&["bench", "--quick"]);
     ok(&out);
     let text = String::from_utf8_lossy(&out.stdout);
-    for q in ["1x", "2x", "4x", "8x", "16x"] {
-        assert!(
-            text.lines().any(|l| l.trim_start().starts_with(q)),
-            "no row for {q}:\n{text}"
-        );
+    let first = text.lines().next().unwrap_or("");
+    assert!(first.contains("cores"), "no machine line:\n{text}");
+    let header: Vec<&str> = text
+        .lines()
+        .find(|l| l.trim_start().starts_with("quality"))
+        .unwrap_or_else(|| panic!("no table header:\n{text}"))
+        .split_whitespace()
+        .collect();
+    for column in [
+        "preamp/1stage",
+        "cab/off",
+        "stereo/mono",
+        "1stage-xRT",
+        "preamp-xRT",
+    ] {
+        assert!(header.contains(&column), "no {column} column:\n{text}");
     }
+    for q in ["1x", "2x", "4x", "8x", "16x"] {
+        let row: Vec<&str> = text
+            .lines()
+            .find(|l| l.split_whitespace().next() == Some(q))
+            .unwrap_or_else(|| panic!("no row for {q}:\n{text}"))
+            .split_whitespace()
+            .collect();
+        assert_eq!(
+            row.len(),
+            header.len(),
+            "{q} row and header differ:\n{text}"
+        );
+        for (name, cell) in header.iter().zip(&row).skip(1) {
+            let value: f64 = cell
+                .parse()
+                .unwrap_or_else(|_| panic!("{q} {name}: {cell:?} is not a number"));
+            assert!(value.is_finite() && value > 0.0, "{q} {name}: {value}");
+        }
+    }
+    // ngspice is either measured or the reason it was not is printed.
+    assert!(text.contains("ngspice:"), "no ngspice line:\n{text}");
 }
