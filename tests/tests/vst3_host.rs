@@ -323,10 +323,13 @@ fn pedalboard_renders_the_vst3_like_the_model() {
             best.0, best.2
         );
         assert!(peak(&reference) > 0.01, "reference is silent");
-        // The host hands the plugin the same 32-bit samples and the plugin runs the same arithmetic: equal
-        // within float rounding (IEEE 754 single precision, a few ulps of full scale).
+        // The host hands the plugin the same 32-bit samples and the plugin runs the same arithmetic; the one
+        // difference is that the host sends every parameter as its 0..1 value, and on the volts-at-full-scale
+        // parameter's skewed range the plugin's 32-bit mapping turns 1 V into 0.9999998 V (a relative change of
+        // 2e-7, which the gain stages carry to the output as a few 1e-7 of full scale). Bound: 1e-6 of full
+        // scale (about 8 ulps of IEEE 754 single precision at full scale).
         assert!(
-            best.0 <= 4.0 * f32::EPSILON,
+            best.0 <= 1e-6,
             "case {k}: pedalboard output differs from the model by {:e} at sample {}",
             best.0,
             best.1
