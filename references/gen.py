@@ -273,6 +273,27 @@ def tube_of(table, what):
     return choice(table, "tube", what, tuple(TUBES))
 
 
+def common_cathode_lines(labels, source, nodes, supply, stage, what, tube):
+    """The netlist lines of one common-cathode stage (a [[preamp]] stage or the gain stage): the grid stopper
+    from `source`, the triode, the plate resistor from `supply`, the cathode resistor and, when it is above 0,
+    the cathode bypass. `labels` = (stopper, triode, plate resistor, cathode resistor, bypass) element names,
+    `nodes` = (grid, plate, cathode)."""
+    stopper, triode, plate_r, cathode_r, bypass_c = labels
+    grid, plate, cath = nodes
+    lines = [
+        f"{stopper} {source} {grid} {r(number(stage, 'grid_stopper', what, 1.0))}",
+        triode_line(triode, plate, grid, cath, tube),
+        f"{plate_r} {supply} {plate} {r(number(stage, 'plate_resistor', what, 1.0))}",
+        f"{cathode_r} {cath} 0 {r(number(stage, 'cathode_resistor', what, 1.0))}",
+    ]
+    bypass = number(stage, "cathode_bypass", what, 0.0)
+    if bypass > 0.0:
+        lines.append(f"{bypass_c} {cath} 0 {r(bypass)}")
+    else:
+        lines.append("* cathode unbypassed (cathode_bypass = 0)")
+    return lines
+
+
 def build_circuit(name, circuit, settings, amplitude, frequency, table):
     """The circuit's element lines (docs/model.md section 3) driven by a sine of `amplitude` volts peak at
     the jack, and the probes to write as [(column name, node)]."""
@@ -369,15 +390,8 @@ def build_circuit(name, circuit, settings, amplitude, frequency, table):
         desc = f"{tube}, B+ {r(number(s, 'supply_volts', sw_what)) if 'supply_volts' in s else r(supply)} V"
         body = []
         grid, plate, cath, net = f"s{k}grid", f"s{k}plate", f"s{k}cath", f"s{k}net"
-        body.append(f"RS{k}STOP {source} {grid} {r(number(s, 'grid_stopper', sw_what, 1.0))}")
-        body.append(triode_line(f"XS{k}", plate, grid, cath, tube))
-        body.append(f"RS{k}PLATE {stage_supply[k - 1]} {plate} {r(number(s, 'plate_resistor', sw_what, 1.0))}")
-        body.append(f"RS{k}CATH {cath} 0 {r(number(s, 'cathode_resistor', sw_what, 1.0))}")
-        bypass = number(s, "cathode_bypass", sw_what, 0.0)
-        if bypass > 0.0:
-            body.append(f"CS{k}BYP {cath} 0 {r(bypass)}")
-        else:
-            body.append("* cathode unbypassed (cathode_bypass = 0)")
+        body += common_cathode_lines((f"RS{k}STOP", f"XS{k}", f"RS{k}PLATE", f"RS{k}CATH", f"CS{k}BYP"),
+                                     source, (grid, plate, cath), stage_supply[k - 1], s, sw_what, tube)
         body.append(f"CS{k}COUP {plate} {net} {r(number(s, 'coupling_cap', sw_what, 1e-15))}")
         if network == "grid_leak":
             leak = number(s, "grid_leak", sw_what, 1.0)
@@ -432,15 +446,8 @@ def build_circuit(name, circuit, settings, amplitude, frequency, table):
 
     gw = f"{what} [gain_stage]"
     fw = f"{what} [follower]"
-    lines.append(f"RGS {source} g1 {r(number(g, 'grid_stopper', gw, 1.0))}")
-    lines.append(triode_line("X1", "p1", "g1", "k1", tube_of(g, gw)))
-    lines.append(f"RP1 {gain_supply} p1 {r(number(g, 'plate_resistor', gw, 1.0))}")
-    lines.append(f"RK1 k1 0 {r(number(g, 'cathode_resistor', gw, 1.0))}")
-    bypass = number(g, "cathode_bypass", gw, 0.0)
-    if bypass > 0.0:
-        lines.append(f"CK1 k1 0 {r(bypass)}")
-    else:
-        lines.append("* cathode unbypassed (cathode_bypass = 0)")
+    lines += common_cathode_lines(("RGS", "X1", "RP1", "RK1", "CK1"), source, ("g1", "p1", "k1"), gain_supply, g,
+                                  gw, tube_of(g, gw))
     lines.append(triode_line("X2", "bplus", "p1", "k2", tube_of(fo, fw)))
     lines.append(f"RK2 k2 0 {r(number(fo, 'cathode_resistor', fw, 1.0))}")
     cw = f"{what} [clamp]"
