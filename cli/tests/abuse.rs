@@ -3,7 +3,7 @@
 
 mod common;
 
-use common::run;
+use common::{run, write_float};
 use std::path::{Path, PathBuf};
 
 fn scratch(name: &str) -> PathBuf {
@@ -12,20 +12,6 @@ fn scratch(name: &str) -> PathBuf {
 
 fn s(p: &Path) -> &str {
     p.to_str().unwrap()
-}
-
-fn write_float(path: &Path, rate: u32, samples: &[f32]) {
-    let spec = hound::WavSpec {
-        channels: 1,
-        sample_rate: rate,
-        bits_per_sample: 32,
-        sample_format: hound::SampleFormat::Float,
-    };
-    let mut w = hound::WavWriter::create(path, spec).unwrap();
-    for &x in samples {
-        w.write_sample(x).unwrap();
-    }
-    w.finalize().unwrap();
 }
 
 /// Two seconds of a plucked-like 110 Hz tone at `peak` full scale.

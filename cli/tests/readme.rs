@@ -4,7 +4,7 @@
 
 mod common;
 
-use common::{scratch, BIN};
+use common::{scratch, write_float, BIN};
 use std::path::Path;
 use std::process::Command;
 
@@ -25,23 +25,18 @@ fn blocks<'a>(text: &'a str, lang: &str) -> Vec<&'a str> {
     out
 }
 
-/// A 1 s plucked-string-like DI at 48 kHz (a decaying 110 Hz tone with harmonics), 0.5 of full scale.
+/// A 1 s plucked-string-like DI at 48 kHz (a decaying 110 Hz tone with harmonics), peaking near 0.5 of full scale.
 fn write_di(path: &Path) {
-    let spec = hound::WavSpec {
-        channels: 1,
-        sample_rate: 48_000,
-        bits_per_sample: 32,
-        sample_format: hound::SampleFormat::Float,
-    };
-    let mut w = hound::WavWriter::create(path, spec).unwrap();
-    for n in 0..48_000 {
-        let t = n as f64 / 48_000.0;
-        let x: f64 = (1..=4)
-            .map(|k| (std::f64::consts::TAU * 110.0 * k as f64 * t).sin() / k as f64)
-            .sum();
-        w.write_sample((0.3 * x * (-3.0 * t).exp()) as f32).unwrap();
-    }
-    w.finalize().unwrap();
+    let samples: Vec<f32> = (0..48_000)
+        .map(|n| {
+            let t = n as f64 / 48_000.0;
+            let x: f64 = (1..=4)
+                .map(|k| (std::f64::consts::TAU * 110.0 * k as f64 * t).sin() / k as f64)
+                .sum();
+            (0.3 * x * (-3.0 * t).exp()) as f32
+        })
+        .collect();
+    write_float(path, 48_000, &samples);
 }
 
 fn breakdown(dir: &Path, args: &[&str]) -> (bool, String) {

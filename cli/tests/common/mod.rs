@@ -22,3 +22,18 @@ pub fn run(args: &[&str]) -> Output {
         .output()
         .expect("run breakdown")
 }
+
+/// Write `samples` as a mono 32-bit float WAV at `rate`.
+pub fn write_float(path: &Path, rate: u32, samples: &[f32]) {
+    let spec = hound::WavSpec {
+        channels: 1,
+        sample_rate: rate,
+        bits_per_sample: 32,
+        sample_format: hound::SampleFormat::Float,
+    };
+    let mut w = hound::WavWriter::create(path, spec).unwrap();
+    for &x in samples {
+        w.write_sample(x).unwrap();
+    }
+    w.finalize().unwrap();
+}
