@@ -16,6 +16,7 @@ pub mod elements;
 pub mod engine;
 pub mod fastmath;
 pub mod lane;
+pub mod lanes;
 pub mod measure;
 pub mod netlist;
 pub mod nodal;

@@ -620,6 +620,7 @@ impl<L: Lane> Nodal<L> {
     fn operating_point(&mut self) -> Result<(), CircuitError> {
         self.history.iter_mut().for_each(|h| *h = L::default());
         self.x.iter_mut().for_each(|v| *v = L::default());
+        let none = L::lt(L::splat(1.0), L::splat(0.0));
         let mut converged = true;
         for step in 1..=10 {
             let share = step as f64 / 10.0;
@@ -627,7 +628,7 @@ impl<L: Lane> Nodal<L> {
                 *v = f * share;
             }
             self.assemble(false);
-            converged = self.solve(L::default(), LONG_ITERATIONS);
+            converged = L::all(self.solve(L::default(), LONG_ITERATIONS, none));
         }
         if !converged {
             return Err(CircuitError(
@@ -647,14 +648,15 @@ impl<L: Lane> Nodal<L> {
     pub fn reset(&mut self) {
         self.x.copy_from_slice(&self.rest_x);
         self.history.iter_mut().for_each(|h| *h = L::default());
+        let none = L::lt(L::splat(1.0), L::splat(0.0));
         self.assemble(false);
-        self.solve(L::default(), LONG_ITERATIONS);
+        self.solve(L::default(), LONG_ITERATIONS, none);
         // With G = 2C/T and h = G v, a capacitor passes no current at its DC voltage v.
         self.assemble(true);
         for (slot, h) in self.caps.iter().zip(self.history.iter_mut()) {
             *h = L::splat(slot.conductance) * across(&self.volts, slot);
         }
-        self.solve(L::default(), LONG_ITERATIONS);
+        self.solve(L::default(), LONG_ITERATIONS, none);
         self.update_history();
         self.x1.copy_from_slice(&self.x);
         self.x2.copy_from_slice(&self.x);
@@ -673,22 +675,27 @@ impl<L: Lane> Nodal<L> {
             self.x[i] = x0 + change.clamp_to(-limit, limit);
         }
         let input = jack_volts * L::splat(self.attenuation);
-        if !self.solve(input, MAX_ITERATIONS) {
-            self.recover(input);
+        let no = L::lt(L::splat(1.0), L::splat(0.0));
+        let converged = self.solve(input, MAX_ITERATIONS, no);
+        if !L::all(converged) {
+            self.recover(input, converged);
         }
         self.update_history();
     }
 
-    /// After a failed solve: start again from the last solution with a larger budget; a lane that still fails
-    /// keeps its last solution.
+    /// After a solve that failed in some lanes: those lanes start again from their last solution with a larger
+    /// budget, the lanes that converged keep their solution untouched; a lane that still fails keeps its last
+    /// solution.
     #[cold]
     #[inline(never)]
-    fn recover(&mut self, input: L) {
+    fn recover(&mut self, input: L, converged: L::Mask) {
         let first = self.report.iterations;
-        self.x.copy_from_slice(&self.x1);
-        let converged = self.solve(input, LONG_ITERATIONS);
+        for (x, last) in self.x.iter_mut().zip(&self.x1) {
+            *x = L::select(converged, *x, *last);
+        }
+        let converged = self.solve(input, LONG_ITERATIONS, converged);
         self.report.iterations += first;
-        if !converged {
+        if !L::all(converged) {
             let mut x = std::mem::take(&mut self.x);
             for (xi, last) in x.iter_mut().zip(&self.x1) {
                 for lane in 0..L::WIDTH {
@@ -697,7 +704,7 @@ impl<L: Lane> Nodal<L> {
                     }
                 }
             }
-            self.evaluate(&x, L::lt(L::splat(1.0), L::splat(0.0)));
+            self.evaluate(&x, converged);
             self.x = x;
         }
     }
@@ -711,11 +718,11 @@ impl<L: Lane> Nodal<L> {
         }
     }
 
-    /// Newton from the unknowns in `x` for this sample's given currents; true when every lane converged.
-    /// Leaves the node voltages in `volts` and the devices' currents (carried through the last step) in the
-    /// evaluations.
+    /// Newton from the unknowns in `x` for this sample's given currents, except in the lanes of `keep`, which
+    /// hold a solution already and do not move; the lanes that converged (`keep` among them). Leaves the node
+    /// voltages in `volts` and the devices' currents (carried through the last step) in the evaluations.
     #[inline(always)]
-    fn solve(&mut self, input: L, max_iterations: u32) -> bool {
+    fn solve(&mut self, input: L, max_iterations: u32, keep: L::Mask) -> L::Mask {
         // Given currents of the kept nodes (and the clusters' share for their recovery): the rails, the jack
         // through its conductances, the capacitors' histories, each through the elimination.
         self.condensed
@@ -723,11 +730,11 @@ impl<L: Lane> Nodal<L> {
         self.volts[self.jack_at] = input;
         let mut x = std::mem::take(&mut self.x);
         let converged = match self.shape.half {
-            1 => self.newton::<3>(&mut x, max_iterations),
-            2 => self.newton::<5>(&mut x, max_iterations),
-            3 => self.newton::<7>(&mut x, max_iterations),
-            4 => self.newton::<9>(&mut x, max_iterations),
-            _ => self.newton::<13>(&mut x, max_iterations),
+            1 => self.newton::<3>(&mut x, max_iterations, keep),
+            2 => self.newton::<5>(&mut x, max_iterations, keep),
+            3 => self.newton::<7>(&mut x, max_iterations, keep),
+            4 => self.newton::<9>(&mut x, max_iterations, keep),
+            _ => self.newton::<13>(&mut x, max_iterations, keep),
         };
         self.x = x;
         // The linear nodes from the solved device nodes.
@@ -912,13 +919,19 @@ impl<L: Lane> Nodal<L> {
         );
     }
 
-    /// Newton's method from `x`, lane by lane; true when every lane converged.
+    /// Newton's method from `x`, lane by lane, the lanes of `keep` held as they are; the lanes that converged.
     #[inline(always)]
-    fn newton<const W: usize>(&mut self, x: &mut [L], max_iterations: u32) -> bool {
+    fn newton<const W: usize>(
+        &mut self,
+        x: &mut [L],
+        max_iterations: u32,
+        keep: L::Mask,
+    ) -> L::Mask {
         let no = L::lt(L::splat(1.0), L::splat(0.0));
-        self.evaluate(x, no);
+        let every = L::lt(L::splat(0.0), L::splat(1.0));
+        self.evaluate(x, keep);
         self.newton_step::<W>();
-        let mut done = no;
+        let mut done = keep;
         let mut iterations = 1;
         for (limit, full) in self.damping.limit.iter_mut().zip(&self.port_limit) {
             *limit = L::splat(*full);
@@ -948,7 +961,7 @@ impl<L: Lane> Nodal<L> {
                     converged: true,
                 };
                 self.settle_volts(x);
-                return true;
+                return every;
             }
             // Otherwise a damped step: when a port that hit its limit then steps the other way its limit
             // halves, so a Newton 2-cycle closes in as bisection would; else the limit grows back to full.
@@ -986,7 +999,7 @@ impl<L: Lane> Nodal<L> {
                     converged: true,
                 };
                 self.settle_volts(x);
-                return true;
+                return every;
             }
             if iterations >= max_iterations {
                 break;
@@ -999,8 +1012,8 @@ impl<L: Lane> Nodal<L> {
             iterations,
             converged: false,
         };
-        self.evaluate(x, no);
-        false
+        self.evaluate(x, done);
+        done
     }
 
     /// The kept nodes' voltages at the accepted point (the pair's node from its carried voltage).
