@@ -424,11 +424,12 @@ pub fn run(args: BenchArgs) -> Result<(), String> {
         println!("(thread CPU time unavailable here: figures are wall-clock)");
     }
     println!(
-        "(model copy: {}; BREAKDOWN_SEPARATE_MADD=1 times the other)",
+        "(multiply-adds: the solver's are a multiply then an add; the triode tables and the cabinet use {}; \
+         BREAKDOWN_SEPARATE_MADD=1 times them separate)",
         if breakdown_dsp::arith::fused_available() {
-            "fused multiply-add, as this processor has FMA"
+            "fused ones, as this processor has FMA"
         } else {
-            "separate multiply and add"
+            "separate ones"
         }
     );
     Ok(())

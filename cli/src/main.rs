@@ -30,7 +30,7 @@ mod report;
 #[command(
     name = "breakdown",
     version,
-    about = "Hear a Zener clamp after a valve stage before you buy parts: a circuit model in real volts.",
+    about = "Hear a Zener clamp in your valve preamp before you buy parts: a circuit model from the input jack, in real volts.",
     after_help = concat!(
         "Input calibration: a plan's [input] or the command line's --volts-at-full-scale / --input-dbu \
          overrides the circuit file's [input] volts_at_full_scale (the command line wins over the plan).\n\n",

@@ -14,7 +14,11 @@ const RATE: f64 = 192_000.0;
 /// lanes get NaN and infinite bursts.
 fn input(k: usize, n: usize, poisoned: Option<usize>) -> f64 {
     if poisoned == Some(k) && (n / 500) % 3 == 1 {
-        return if n.is_multiple_of(2) { f64::NAN } else { f64::INFINITY };
+        return if n.is_multiple_of(2) {
+            f64::NAN
+        } else {
+            f64::INFINITY
+        };
     }
     let t = n as f64 / RATE;
     (0.2 + 0.3 * k as f64) * (2.0 * std::f64::consts::PI * 220.0 * t).sin()
