@@ -6,6 +6,7 @@
 
 use breakdown_dsp::cabinet::Cabinet;
 use breakdown_dsp::circuit::BUILTIN_TOML;
+use breakdown_dsp::lanes::{f64x2, f64x4};
 use breakdown_dsp::{Circuit, Engine, Probe, Quality, Settings};
 use std::path::{Path, PathBuf};
 use std::process::{Command, Stdio};
@@ -102,6 +103,88 @@ struct Item<'a> {
     channels: usize,
     /// The cabinet after the engine's listening output.
     cabinet: bool,
+    /// How the models run: one engine per channel, or packed as lanes of one engine.
+    lanes: Lanes,
+}
+
+/// How an item's models run.
+#[derive(Clone, Copy, PartialEq)]
+enum Lanes {
+    /// One engine per channel.
+    Separate,
+    /// The two channels as two packed lanes of one engine.
+    Stereo,
+    /// Four switch positions (0, 1, 2, 3, clamped to the circuit's) on one DI as four packed lanes.
+    Positions,
+}
+
+/// The engines of an item.
+enum Runner {
+    Separate(Vec<Engine>),
+    Two(Engine<f64x2>),
+    Four(Engine<f64x4>),
+}
+
+impl Runner {
+    fn new(item: &Item, quality: Quality, settings: Settings) -> Result<Runner, String> {
+        Ok(match item.lanes {
+            Lanes::Separate => Runner::Separate(
+                (0..item.channels)
+                    .map(|_| Engine::new(item.circuit, RATE, quality, settings).map_err(|e| e.0))
+                    .collect::<Result<Vec<_>, _>>()?,
+            ),
+            Lanes::Stereo => {
+                let mut e =
+                    Engine::with_lanes(item.circuit, RATE, quality, settings).map_err(|e| e.0)?;
+                e.set_active_probes(&[Probe::Listen]);
+                Runner::Two(e)
+            }
+            Lanes::Positions => {
+                let mut e: Engine<f64x4> =
+                    Engine::with_lanes(item.circuit, RATE, quality, settings).map_err(|e| e.0)?;
+                let count = e.model().positions();
+                for lane in 0..4 {
+                    e.set_lane_position(lane, lane.min(count.saturating_sub(1)));
+                }
+                e.reset();
+                e.set_active_probes(&[Probe::Listen]);
+                Runner::Four(e)
+            }
+        })
+    }
+
+    fn reset(&mut self) {
+        match self {
+            Runner::Separate(engines) => engines.iter_mut().for_each(|e| e.reset()),
+            Runner::Two(e) => e.reset(),
+            Runner::Four(e) => e.reset(),
+        }
+    }
+
+    /// One block of the listening output into `outs` (one row per channel; packed positions write row 0).
+    fn process(&mut self, block: &[f32], outs: &mut [Vec<f32>]) {
+        match self {
+            Runner::Separate(engines) => {
+                for (engine, out) in engines.iter_mut().zip(outs.iter_mut()) {
+                    engine.process_block(block, &mut out[..block.len()], Probe::Listen);
+                }
+            }
+            Runner::Two(e) => {
+                for (n, &x) in block.iter().enumerate() {
+                    let f = e.process_lanes(&[x, x]);
+                    let (l, r) = (f[0].listen as f32, f[1].listen as f32);
+                    outs[0][n] = l;
+                    outs[1][n] = r;
+                }
+            }
+            Runner::Four(e) => {
+                for (n, &x) in block.iter().enumerate() {
+                    let f = e.process_lanes(&[x; 4]);
+                    outs[0][n] = (f[0].listen + f[1].listen + f[2].listen + f[3].listen) as f32;
+                }
+            }
+        }
+    }
 }
 
 /// One item's cost: ns of CPU per output sample (per frame for stereo) and the real-time factor.
@@ -118,9 +201,7 @@ fn measure(
     signal: &[f32],
     min_seconds: f64,
 ) -> Result<Cost, String> {
-    let mut engines = (0..item.channels)
-        .map(|_| Engine::new(item.circuit, RATE, quality, settings).map_err(|e| e.0))
-        .collect::<Result<Vec<_>, _>>()?;
+    let mut engines = Runner::new(&item, quality, settings)?;
     let mut cabinet = if item.cabinet {
         Some(Cabinet::builtin(RATE, item.channels).map_err(|e| format!("cabinet: {e}"))?)
     } else {
@@ -129,11 +210,9 @@ fn measure(
     let warmup = plucked_di(RATE, 0.1, 0.8);
     let mut outs = vec![vec![0.0f32; BLOCK]; item.channels];
     let mut sink = 0.0f64;
-    let mut render = |engines: &mut [Engine], cabinet: &mut Option<Cabinet>, input: &[f32]| {
+    let mut render = |engines: &mut Runner, cabinet: &mut Option<Cabinet>, input: &[f32]| {
         for block in input.chunks(BLOCK) {
-            for (engine, out) in engines.iter_mut().zip(outs.iter_mut()) {
-                engine.process_block(block, &mut out[..block.len()], Probe::Listen);
-            }
+            engines.process(block, &mut outs);
             if let Some(cab) = cabinet.as_mut() {
                 for n in 0..block.len() {
                     let right = outs.get(1).map_or(0.0, |o| o[n] as f64);
@@ -150,9 +229,7 @@ fn measure(
     let start = Instant::now();
     let mut renders = 0usize;
     let elapsed = loop {
-        for engine in engines.iter_mut() {
-            engine.reset();
-        }
+        engines.reset();
         if let Some(cab) = cabinet.as_mut() {
             cab.reset();
         }
@@ -336,7 +413,7 @@ pub fn run(args: BenchArgs) -> Result<(), String> {
         if args.quick { 0.2 } else { 1.0 },
     );
     let mut header = format!(
-        "{:>7} {:>11} {:>11} {:>11} {:>11} {:>14} {:>10} {:>8} {:>10} {:>12}",
+        "{:>7} {:>11} {:>11} {:>11} {:>11} {:>14} {:>10} {:>8} {:>10} {:>12} {:>12} {:>10}",
         "quality",
         "1stage-ns",
         "1stage-xRT",
@@ -346,7 +423,9 @@ pub fn run(args: BenchArgs) -> Result<(), String> {
         "cab-ns",
         "cab/off",
         "stereo-ns",
-        "stereo/mono"
+        "stereo/mono",
+        "packed/mono",
+        "4pos/mono"
     );
     if ngspice.is_ok() {
         header.push_str(&format!(" {:>15}", "preamp/ngspice"));
@@ -355,12 +434,13 @@ pub fn run(args: BenchArgs) -> Result<(), String> {
     let mut worst_preamp = (0.0f64, Quality::X1);
     let mut worst_cabinet = (0.0f64, Quality::X1);
     for &quality in &qualities {
-        let cost = |circuit, channels, cabinet| {
+        let cost = |circuit, channels, cabinet, lanes| {
             measure(
                 Item {
                     circuit,
                     channels,
                     cabinet,
+                    lanes,
                 },
                 quality,
                 settings,
@@ -368,10 +448,12 @@ pub fn run(args: BenchArgs) -> Result<(), String> {
                 min_seconds,
             )
         };
-        let single = cost(&one_stage, 1, false)?;
-        let mono = cost(&preamp, 1, false)?;
-        let cab = cost(&preamp, 1, true)?;
-        let stereo = cost(&preamp, 2, false)?;
+        let single = cost(&one_stage, 1, false, Lanes::Separate)?;
+        let mono = cost(&preamp, 1, false, Lanes::Separate)?;
+        let cab = cost(&preamp, 1, true, Lanes::Separate)?;
+        let stereo = cost(&preamp, 2, false, Lanes::Separate)?;
+        let packed = cost(&preamp, 2, false, Lanes::Stereo)?;
+        let four = cost(&preamp, 1, false, Lanes::Positions)?;
         let preamp_ratio = mono.ns_per_sample / single.ns_per_sample;
         let cabinet_ratio = cab.ns_per_sample / mono.ns_per_sample;
         if preamp_ratio > worst_preamp.0 {
@@ -381,7 +463,7 @@ pub fn run(args: BenchArgs) -> Result<(), String> {
             worst_cabinet = (cabinet_ratio, quality);
         }
         let mut row = format!(
-            "{:>6}x {:>11.1} {:>11.1} {:>11.1} {:>11.1} {:>14.2} {:>10.1} {:>8.2} {:>10.1} {:>12.2}",
+            "{:>6}x {:>11.1} {:>11.1} {:>11.1} {:>11.1} {:>14.2} {:>10.1} {:>8.2} {:>10.1} {:>12.2} {:>12.2} {:>10.2}",
             quality.factor(),
             single.ns_per_sample,
             single.realtime,
@@ -391,7 +473,9 @@ pub fn run(args: BenchArgs) -> Result<(), String> {
             cab.ns_per_sample,
             cabinet_ratio,
             stereo.ns_per_sample,
-            stereo.ns_per_sample / mono.ns_per_sample
+            stereo.ns_per_sample / mono.ns_per_sample,
+            packed.ns_per_sample / mono.ns_per_sample,
+            four.ns_per_sample / mono.ns_per_sample
         );
         if let Ok(spice) = ngspice {
             row.push_str(&format!(" {:>15.1}", mono.realtime / spice));
@@ -400,8 +484,9 @@ pub fn run(args: BenchArgs) -> Result<(), String> {
     }
     println!(
         "(1stage: presets-demo/one-stage.toml; preamp: the built-in preamp; cab: the preamp with the built-in \
-         cabinet after its listening output; stereo: two preamp engines, ns per stereo frame; xRT: times \
-         real time on one core)"
+         cabinet after its listening output; stereo: two preamp engines, ns per stereo frame; packed: the two \
+         channels as two SIMD lanes of one engine; 4pos: four switch positions on one DI as four lanes; xRT: \
+         times real time on one core)"
     );
     println!(
         "targets: preamp/1stage at most {PREAMP_TARGET} (worst here {:.2} at {}x: {}); cab/off at most \

@@ -3,6 +3,7 @@
 
 use crate::circuit::{Circuit, CircuitError, Settings, MAX_PREAMP_STAGES};
 use crate::elements::Knob;
+use crate::lane::Lane;
 use crate::netlist::Netlist;
 use crate::nodal::{NewtonReport, Nodal};
 use crate::oversampling::{self, Downsampler, Quality, Upsampler};
@@ -465,17 +466,25 @@ struct ProbeNodes {
     plate_count: usize,
 }
 
-/// The circuit model plus oversampling and controls, at one host sample rate.
+/// Most models one engine runs side by side (`Lane::WIDTH` of the widest packed lane type).
+pub const MAX_LANES: usize = 4;
+
+/// The circuit model plus oversampling and controls, at one host sample rate. `L` is the model's lane type:
+/// `f64` runs one model; a packed type (`crate::lanes`) runs two or four that share the knobs, each with its own
+/// input, switch position, oversampling, probes and meters (the two channels of a stereo DI, or the compared
+/// positions on one DI). The single-model methods (`process_sample`, `meters`, `readout`, `render`) feed every
+/// lane the same input and report lane 0.
 #[derive(Clone)]
-pub struct Engine {
-    model: Nodal<f64>,
+pub struct Engine<L: Lane = f64> {
+    model: Nodal<L>,
     nodes: ProbeNodes,
     quality: Quality,
     sample_rate: f64,
-    up: Upsampler,
-    down: [Downsampler; SLOTS],
-    high_in: [f64; 16],
-    high_out: [[f64; 16]; SLOTS],
+    /// Per lane: the upsampler, the decimators of each probe slot and their working rows.
+    up: Vec<Upsampler>,
+    down: Vec<[Downsampler; SLOTS]>,
+    high_in: Vec<[f64; 16]>,
+    high_out: Vec<[[f64; 16]; SLOTS]>,
     input_volts_per_unit: f64,
     listen_units_per_volt: f64,
     knobs: [Glide; 5],
@@ -484,21 +493,24 @@ pub struct Engine {
     /// The value each knob's pots were last set to.
     applied: [f64; 5],
     active: [bool; SLOTS],
-    meters: Meters,
-    frame: Frame,
+    /// Per lane: the meters and the last host-rate frame.
+    meters: Vec<Meters>,
+    frames: Vec<Frame>,
+    outs: Vec<[f64; SLOTS]>,
 }
 
-impl std::fmt::Debug for Engine {
+impl<L: Lane> std::fmt::Debug for Engine<L> {
     fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
         f.debug_struct("Engine")
             .field("quality", &self.quality)
             .field("sample_rate", &self.sample_rate)
+            .field("lanes", &L::WIDTH)
             .finish()
     }
 }
 
 impl Engine {
-    /// Prepare the model for `circuit` at host rate `sample_rate` (22.05 kHz .. 384 kHz). Allocates and solves
+    /// Prepare one model for `circuit` at host rate `sample_rate` (22.05 kHz .. 384 kHz). Allocates and solves
     /// the DC operating point: call outside the audio thread.
     pub fn new(
         circuit: &Circuit,
@@ -506,6 +518,18 @@ impl Engine {
         quality: Quality,
         settings: Settings,
     ) -> Result<Engine, CircuitError> {
+        Engine::with_lanes(circuit, sample_rate, quality, settings)
+    }
+}
+
+impl<L: Lane> Engine<L> {
+    /// As `Engine::new`, with `L::WIDTH` models side by side, every lane at `settings`.
+    pub fn with_lanes(
+        circuit: &Circuit,
+        sample_rate: f64,
+        quality: Quality,
+        settings: Settings,
+    ) -> Result<Engine<L>, CircuitError> {
         circuit.validate()?;
         circuit.check_settings(&settings)?;
         if !(22_050.0..=384_000.0).contains(&sample_rate) {
@@ -513,9 +537,15 @@ impl Engine {
                 "sample rate {sample_rate} Hz is outside 22050 .. 384000 Hz"
             )));
         }
+        if L::WIDTH > MAX_LANES {
+            return Err(CircuitError(format!(
+                "{} models side by side: at most {MAX_LANES}",
+                L::WIDTH
+            )));
+        }
         let factor = quality.factor();
         let rate = sample_rate * factor as f64;
-        let mut model = Nodal::new(circuit, rate, settings.position)?;
+        let mut model = Nodal::<L>::new(circuit, rate, settings.position)?;
         let knob_values = [
             settings.gain,
             settings.level,
@@ -528,23 +558,27 @@ impl Engine {
         }
         let nodes = Self::probe_nodes(model.netlist());
         let valve_count = model.netlist().valves.len();
+        let lanes = L::WIDTH;
         let mut engine = Engine {
             model,
             nodes,
             quality,
             sample_rate,
-            up: Upsampler::new(quality),
-            down: std::array::from_fn(|_| Downsampler::new(quality)),
-            high_in: [0.0; 16],
-            high_out: [[0.0; 16]; SLOTS],
+            up: (0..lanes).map(|_| Upsampler::new(quality)).collect(),
+            down: (0..lanes)
+                .map(|_| std::array::from_fn(|_| Downsampler::new(quality)))
+                .collect(),
+            high_in: vec![[0.0; 16]; lanes],
+            high_out: vec![[[0.0; 16]; SLOTS]; lanes],
             input_volts_per_unit: circuit.input.volts_at_full_scale,
             listen_units_per_volt: 1.0 / circuit.listen.volts_at_full_scale,
             knobs: knob_values.map(|v| Glide::new(v, sample_rate)),
             countdown: [0; 5],
             applied: knob_values,
             active: [true; SLOTS],
-            meters: Meters::new(1.0 / rate, valve_count),
-            frame: Frame::default(),
+            meters: vec![Meters::new(1.0 / rate, valve_count); lanes],
+            frames: vec![Frame::default(); lanes],
+            outs: vec![[0.0; SLOTS]; lanes],
         };
         engine.reset();
         Ok(engine)
@@ -564,6 +598,11 @@ impl Engine {
         }
     }
 
+    /// Models side by side.
+    pub fn lanes(&self) -> usize {
+        L::WIDTH
+    }
+
     /// Return to the rest state with silent history (no thump on the next sample); knobs jump to their
     /// targets. Real-time safe.
     pub fn reset(&mut self) {
@@ -574,41 +613,43 @@ impl Engine {
             self.countdown[k] = 0;
         }
         self.model.reset();
-        self.up.reset(0.0);
-        let rest = self.slot_values();
-        for (d, v) in self.down.iter_mut().zip(rest) {
-            d.reset(v);
+        for lane in 0..L::WIDTH {
+            self.up[lane].reset(0.0);
+            let rest = self.slot_values(lane);
+            for (d, v) in self.down[lane].iter_mut().zip(rest) {
+                d.reset(v);
+            }
         }
-        self.meters = Meters::new(self.meters.period, self.meters.valve_count);
+        self.reset_meters();
     }
 
-    /// The probes' values at the model's last sample, in slot order.
+    /// Lane `lane`'s probes at the model's last sample, in slot order.
     #[inline(always)]
-    fn slot_values(&self) -> [f64; SLOTS] {
+    fn slot_values(&self, lane: usize) -> [f64; SLOTS] {
         let m = &self.model;
         let n = &self.nodes;
-        let wiper = m.node_volts(n.wiper);
-        let tone = n.tone.map_or(0.0, |t| m.node_volts(t));
-        let (positive, negative) = m.part_volts(0);
+        let wiper = m.node_volts(n.wiper).get(lane);
+        let tone = n.tone.map_or(0.0, |t| m.node_volts(t).get(lane));
+        let (positive, negative) = m.part_volts(lane);
         let heard = if n.tone.is_some() { tone } else { wiper };
         let mut v = [0.0; SLOTS];
         v[0] = heard * self.listen_units_per_volt;
-        v[1] = m.node_volts(n.clamp);
+        v[1] = m.node_volts(n.clamp).get(lane);
         v[2] = wiper;
-        v[3] = m.pair_state().current;
+        v[3] = m.pair_state().current.get(lane);
         v[4] = positive;
         v[5] = negative;
         v[6] = tone;
         for k in 0..n.plate_count {
             if self.active[7 + k] {
-                v[7 + k] = m.node_volts(n.plates[k]);
+                v[7 + k] = m.node_volts(n.plates[k]).get(lane);
             }
         }
         v
     }
 
-    /// Decimate only these probes (each costs one anti-alias filter); the others read 0 in every `Frame`.
-    /// All probes are active after `new`.
+    /// Decimate only these probes (each costs one anti-alias filter per lane); the others read 0 in every
+    /// `Frame`. All probes are active after `new`.
     pub fn set_active_probes(&mut self, probes: &[Probe]) {
         self.active = [false; SLOTS];
         for p in probes {
@@ -646,10 +687,19 @@ impl Engine {
         self.set_knob(Knob::Level, level);
     }
 
-    /// Switch position (index into the circuit's list; clamped). Instant, as the real switch is: crossfade
-    /// between engines for click-free comparison.
+    /// Switch position of every lane (index into the circuit's list; clamped). Instant, as the real switch is:
+    /// crossfade between engines for click-free comparison.
     pub fn set_position(&mut self, position: usize) {
-        self.model.set_position(0, position);
+        for lane in 0..L::WIDTH {
+            self.model.set_position(lane, position);
+        }
+    }
+
+    /// Switch position of one lane (as `set_position`; a lane beyond the engine's is ignored).
+    pub fn set_lane_position(&mut self, lane: usize, position: usize) {
+        if lane < L::WIDTH {
+            self.model.set_position(lane, position);
+        }
     }
 
     /// Peak volts at the input jack for a full-scale sample.
@@ -660,25 +710,31 @@ impl Engine {
     }
 
     /// The circuit model (pairs, netlist, node voltages).
-    pub fn model(&self) -> &Nodal<f64> {
+    pub fn model(&self) -> &Nodal<L> {
         &self.model
     }
 
     /// Mutable model, for replacing a pair (not real-time safe: builds tables).
-    pub fn model_mut(&mut self) -> &mut Nodal<f64> {
+    pub fn model_mut(&mut self) -> &mut Nodal<L> {
         &mut self.model
     }
 
-    /// Every readout at the model's last internal sample (right after `new` or `reset`: the DC operating point).
+    /// Every readout of lane 0 at the model's last internal sample (right after `new` or `reset`: the DC
+    /// operating point).
     pub fn readout(&self) -> Readout {
+        self.lane_readout(0)
+    }
+
+    /// Every readout of lane `lane` (below `lanes()`) at the model's last internal sample.
+    pub fn lane_readout(&self, lane: usize) -> Readout {
         let m = &self.model;
         let n = &self.nodes;
-        let (positive, negative) = m.part_volts(0);
+        let (positive, negative) = m.part_volts(lane);
         let mut r = Readout {
-            clamp_volts: m.node_volts(n.clamp),
-            wiper_volts: m.node_volts(n.wiper),
-            tone_volts: n.tone.map_or(0.0, |t| m.node_volts(t)),
-            zener_current: m.pair_state().current,
+            clamp_volts: m.node_volts(n.clamp).get(lane),
+            wiper_volts: m.node_volts(n.wiper).get(lane),
+            tone_volts: n.tone.map_or(0.0, |t| m.node_volts(t).get(lane)),
+            zener_current: m.pair_state().current.get(lane),
             positive_part_volts: positive,
             negative_part_volts: negative,
             valve_count: m.netlist().valves.len(),
@@ -688,35 +744,55 @@ impl Engine {
             let [plate, grid, cathode] = m.valve_terminal_volts(k);
             let e = m.valve(k);
             *out = ValveReadout {
-                plate_volts: plate,
-                grid_volts: grid,
-                cathode_volts: cathode,
-                plate_current: e.plate,
-                grid_current: e.grid,
+                plate_volts: plate.get(lane),
+                grid_volts: grid.get(lane),
+                cathode_volts: cathode.get(lane),
+                plate_current: e.plate.get(lane),
+                grid_current: e.grid.get(lane),
             };
         }
         r
     }
 
+    /// Lane 0's meters.
     pub fn meters(&self) -> &Meters {
-        &self.meters
+        &self.meters[0]
+    }
+
+    /// Lane `lane`'s meters (below `lanes()`).
+    pub fn lane_meters(&self, lane: usize) -> &Meters {
+        &self.meters[lane]
     }
 
     pub fn reset_meters(&mut self) {
-        self.meters = Meters::new(self.meters.period, self.meters.valve_count);
+        for m in self.meters.iter_mut() {
+            *m = Meters::new(m.period, m.valve_count);
+        }
     }
 
-    /// Process one host sample (full-scale units) and return every active probe at the host rate.
+    /// Process one host sample (full-scale units), the same input in every lane, and return lane 0's active
+    /// probes at the host rate.
     #[inline]
     pub fn process_sample(&mut self, input: f32) -> &Frame {
-        let mut out = self.advance(input);
-        for (o, active) in out.iter_mut().zip(self.active) {
-            if !(active && o.is_finite()) {
-                *o = 0.0;
+        let inputs = [input; MAX_LANES];
+        &self.process_lanes(&inputs[..L::WIDTH])[0]
+    }
+
+    /// Process one host sample of each lane (`inputs[lane]`, full-scale units; a missing lane reads silence)
+    /// and return every lane's active probes at the host rate.
+    #[inline]
+    pub fn process_lanes(&mut self, inputs: &[f32]) -> &[Frame] {
+        self.advance(inputs);
+        for lane in 0..L::WIDTH {
+            let mut out = self.outs[lane];
+            for (o, active) in out.iter_mut().zip(self.active) {
+                if !(active && o.is_finite()) {
+                    *o = 0.0;
+                }
             }
+            self.frames[lane] = Frame::from_slots(&out);
         }
-        self.frame = Frame::from_slots(&out);
-        &self.frame
+        &self.frames
     }
 
     /// Glide the knobs one host sample; a moving pot's network is rebuilt every `POT_UPDATE_INTERVAL` samples
@@ -741,61 +817,89 @@ impl Engine {
         }
     }
 
-    /// One host sample through the model: the probes' values in slot order, the active ones decimated (the
-    /// others unspecified), not yet checked for finiteness.
+    /// One host sample through the model: each lane's probes in slot order into `outs`, the active ones
+    /// decimated (the others unspecified), not yet checked for finiteness.
     #[inline(always)]
-    fn advance(&mut self, input: f32) -> [f64; SLOTS] {
-        let mut x = input as f64;
-        if !x.is_finite() {
-            x = 0.0;
+    fn advance(&mut self, inputs: &[f32]) {
+        let mut volts = L::splat(0.0);
+        for lane in 0..L::WIDTH {
+            let mut x = inputs.get(lane).map_or(0.0, |&x| x as f64);
+            if !x.is_finite() {
+                x = 0.0;
+            }
+            volts.set(
+                lane,
+                (x * self.input_volts_per_unit).clamp(-INPUT_LIMIT_VOLTS, INPUT_LIMIT_VOLTS),
+            );
         }
-        let volts = (x * self.input_volts_per_unit).clamp(-INPUT_LIMIT_VOLTS, INPUT_LIMIT_VOLTS);
         self.glide_knobs();
         if self.quality == Quality::X1 {
             self.step_model(volts);
-            return self.slot_values();
+            for lane in 0..L::WIDTH {
+                self.outs[lane] = self.slot_values(lane);
+            }
+            return;
         }
         let factor = self.quality.factor();
-        self.up.process(volts, &mut self.high_in[..factor]);
+        for lane in 0..L::WIDTH {
+            let (up, high) = (&mut self.up[lane], &mut self.high_in[lane]);
+            up.process(volts.get(lane), &mut high[..factor]);
+        }
         for k in 0..factor {
-            self.step_model(self.high_in[k]);
-            let values = self.slot_values();
-            for (row, v) in self.high_out.iter_mut().zip(values) {
-                row[k] = v;
+            let mut v = L::splat(0.0);
+            for lane in 0..L::WIDTH {
+                v.set(lane, self.high_in[lane][k]);
+            }
+            self.step_model(v);
+            for lane in 0..L::WIDTH {
+                let values = self.slot_values(lane);
+                for (row, v) in self.high_out[lane].iter_mut().zip(values) {
+                    row[k] = v;
+                }
             }
         }
-        let mut out = [0.0; SLOTS];
-        for (slot, o) in out.iter_mut().enumerate() {
-            if self.active[slot] {
-                *o = self.down[slot].process(&self.high_out[slot][..factor]);
+        for lane in 0..L::WIDTH {
+            for slot in 0..SLOTS {
+                if self.active[slot] {
+                    self.outs[lane][slot] =
+                        self.down[lane][slot].process(&self.high_out[lane][slot][..factor]);
+                }
             }
         }
-        out
     }
 
     /// One internal sample of the model and the meters.
     #[inline(always)]
-    fn step_model(&mut self, jack_volts: f64) {
+    fn step_model(&mut self, jack_volts: L) {
         self.model.process(jack_volts);
         let m = &self.model;
-        let (positive, negative) = m.part_volts(0);
-        let r = SampleReadout {
-            clamp_volts: m.node_volts(self.nodes.clamp),
-            zener_current: m.pair_state().current,
-            positive_part_volts: positive,
-            negative_part_volts: negative,
-        };
-        self.meters.record(&r, m.report());
-        for k in 0..self.meters.valve_count {
-            let [plate, _, cathode] = m.valve_terminal_volts(k);
-            let e = m.valve(k);
-            self.meters
-                .record_valve(k, plate, plate - cathode, e.plate, e.grid);
+        for lane in 0..L::WIDTH {
+            let (positive, negative) = m.part_volts(lane);
+            let r = SampleReadout {
+                clamp_volts: m.node_volts(self.nodes.clamp).get(lane),
+                zener_current: m.pair_state().current.get(lane),
+                positive_part_volts: positive,
+                negative_part_volts: negative,
+            };
+            let meters = &mut self.meters[lane];
+            meters.record(&r, m.report());
+            for k in 0..meters.valve_count {
+                let [plate, _, cathode] = m.valve_terminal_volts(k);
+                let e = m.valve(k);
+                let (plate, cathode) = (plate.get(lane), cathode.get(lane));
+                meters.record_valve(
+                    k,
+                    plate,
+                    plate - cathode,
+                    e.plate.get(lane),
+                    e.grid.get(lane),
+                );
+            }
         }
     }
 
-    /// Process a block, writing one probe. Output is delayed by `latency()` samples.
-    /// Only `probe` stays active afterwards (see `set_active_probes`).
+    /// Process a block, writing one probe of lane 0 (every lane fed the same input). Output is delayed by
+    /// `latency()` samples. Only `probe` stays active afterwards (see `set_active_probes`).
     pub fn process_block(&mut self, input: &[f32], output: &mut [f32], probe: Probe) {
         let slot = probe.slot();
         if !self.active[slot] || self.active.iter().filter(|a| **a).count() > 1 {
@@ -803,23 +907,43 @@ impl Engine {
         }
         let _guard = crate::denormals::FlushGuard::new();
         for (x, y) in input.iter().zip(output.iter_mut()) {
-            let v = self.advance(*x)[slot];
+            let inputs = [*x; MAX_LANES];
+            self.advance(&inputs[..L::WIDTH]);
+            let v = self.outs[0][slot];
             *y = if v.is_finite() { v as f32 } else { 0.0 };
         }
     }
 
-    /// Render a whole signal offline for one probe, latency removed (output[n] lines up with input[n]).
-    /// Only `probe` stays active afterwards (see `set_active_probes`).
+    /// Render a whole signal offline for one probe of lane 0 (every lane fed the same input), latency removed
+    /// (output[n] lines up with input[n]). Only `probe` stays active afterwards (see `set_active_probes`).
     pub fn render(&mut self, input: &[f32], probe: Probe) -> Vec<f32> {
+        let mut out = self.render_lanes(&[input], probe);
+        out.swap_remove(0)
+    }
+
+    /// Render one signal per lane offline (`inputs[lane]`; a missing lane or a shorter signal reads silence)
+    /// for one probe, latency removed; one output per lane, as long as the longest input. Only `probe` stays
+    /// active afterwards.
+    pub fn render_lanes(&mut self, inputs: &[&[f32]], probe: Probe) -> Vec<Vec<f32>> {
         self.set_active_probes(&[probe]);
         let latency = self.latency();
-        let mut out = Vec::with_capacity(input.len());
+        let len = inputs.iter().map(|i| i.len()).max().unwrap_or(0);
+        let mut out = vec![Vec::with_capacity(len); L::WIDTH];
         let _guard = crate::denormals::FlushGuard::new();
-        for n in 0..input.len() + latency {
-            let x = input.get(n).copied().unwrap_or(0.0);
-            let v = self.process_sample(x).get(probe) as f32;
+        let mut x = [0.0f32; MAX_LANES];
+        for n in 0..len + latency {
+            for (lane, v) in x.iter_mut().take(L::WIDTH).enumerate() {
+                *v = inputs
+                    .get(lane)
+                    .and_then(|i| i.get(n))
+                    .copied()
+                    .unwrap_or(0.0);
+            }
+            let frames = self.process_lanes(&x[..L::WIDTH]);
             if n >= latency {
-                out.push(v);
+                for (o, f) in out.iter_mut().zip(frames) {
+                    o.push(f.get(probe) as f32);
+                }
             }
         }
         out
@@ -916,7 +1040,7 @@ mod tests {
             let x = if x.is_finite() { x as f64 } else { 0.0 };
             let volts =
                 (x * twin.input_volts_per_unit).clamp(-INPUT_LIMIT_VOLTS, INPUT_LIMIT_VOLTS);
-            twin.up.process(volts, &mut high[..factor]);
+            twin.up[0].process(volts, &mut high[..factor]);
             for &h in &high[..factor] {
                 twin.model.process(h);
                 let r = twin.readout();

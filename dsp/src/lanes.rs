@@ -4,7 +4,7 @@
 //! and max keep `self` where either is NaN), so each lane's result equals the one-model solver's.
 
 use crate::lane::Lane;
-use wide::{f64x2, f64x4};
+pub use wide::{f64x2, f64x4};
 
 macro_rules! packed_lane {
     ($t:ty, $width:expr, $full:expr) => {

@@ -108,3 +108,49 @@ fn a_poisoned_lane_leaves_the_others_as_they_were() {
     assert_lanes_match::<f64x2>(&Circuit::builtin(), &[1, 2], Some(1));
     assert_lanes_match::<f64x4>(&Circuit::builtin(), &[1, 2, 0, 1], Some(2));
 }
+
+/// The engine with two packed lanes (the channels of a stereo DI) renders each channel as a one-model engine
+/// does: oversampling, knob glides and probes included, at the default quality.
+#[test]
+fn a_two_lane_engine_renders_each_channel_as_one_model_does() {
+    use breakdown_dsp::engine::{Engine, Probe};
+    use breakdown_dsp::oversampling::Quality;
+    let c = Circuit::builtin();
+    let settings = breakdown_dsp::Settings {
+        gain: 0.8,
+        level: 0.5,
+        position: 1,
+        ..Default::default()
+    };
+    let left: Vec<f32> = (0..4800)
+        .map(|n| (0.4 * (2.0 * std::f64::consts::PI * 110.0 * n as f64 / 48_000.0).sin()) as f32)
+        .collect();
+    let right: Vec<f32> = (0..4000)
+        .map(|n| (0.7 * (2.0 * std::f64::consts::PI * 165.0 * n as f64 / 48_000.0).sin()) as f32)
+        .collect();
+    for probe in [Probe::Listen, Probe::Clamp] {
+        let mut packed: Engine<f64x2> =
+            Engine::with_lanes(&c, 48_000.0, Quality::X4, settings).unwrap();
+        let both = packed.render_lanes(&[&left, &right], probe);
+        for (lane, input) in [&left, &right].into_iter().enumerate() {
+            let mut one = Engine::new(&c, 48_000.0, Quality::X4, settings).unwrap();
+            let mut padded = input.clone();
+            padded.resize(left.len(), 0.0);
+            let alone = one.render(&padded, probe);
+            assert_eq!(both[lane].len(), alone.len());
+            let peak = alone.iter().fold(0.0f32, |m, v| m.max(v.abs()));
+            let worst = alone
+                .iter()
+                .zip(&both[lane])
+                .fold(0.0f32, |m, (a, b)| m.max((a - b).abs()));
+            assert!(
+                peak > 0.05,
+                "{probe:?} lane {lane}: the tone must reach the output"
+            );
+            assert!(
+                worst <= 1e-6 * peak,
+                "{probe:?} lane {lane}: packed engine differs by {worst:e} (peak {peak})"
+            );
+        }
+    }
+}
