@@ -22,6 +22,7 @@ mod calibrate;
 mod compare;
 mod demo;
 mod files;
+mod listening;
 mod options;
 mod render;
 mod report;

@@ -7,6 +7,7 @@ use crate::analysis::ratings;
 use crate::analysis::{RatingArgs, SAFETY};
 use crate::audio::{self, Audio, Silence};
 use crate::files;
+use crate::listening::{CabinetChoice, Listening};
 use crate::options::{
     circuit_source, load_circuit, parse_quality, pick, Calibration, CalibrationArgs,
 };
@@ -51,6 +52,14 @@ pub struct RenderArgs {
     /// positive-part, negative-part.
     #[arg(long, value_name = "NODE")]
     pub probe: Option<String>,
+    /// Listening point: chain (the tone stack's output, then the cabinet; the default) or wiper (the level
+    /// pot's wiper, bare). Both scaled by the circuit's [listen] volts_at_full_scale.
+    #[arg(long, value_name = "chain|wiper", conflicts_with = "probe")]
+    pub listen: Option<String>,
+    /// Speaker cabinet at the end of the chain: builtin (the default), none, or an impulse-response WAV (mono
+    /// or stereo, at most 2 s, any rate: resampled to the DI's). A stereo response makes a mono DI stereo.
+    #[arg(long, value_name = "FILE|builtin|none", conflicts_with = "probe")]
+    pub cabinet: Option<String>,
     /// Oversampling factor: 1, 2, 4, 8 or 16 (default 4: the alias products of a hard-clamped tone stay 60 dB
     /// down, docs/model.md section 6).
     #[arg(long, value_name = "1|2|4|8|16", default_value = "4")]
@@ -66,6 +75,7 @@ pub struct Job {
     pub circuit: Circuit,
     pub settings: Settings,
     pub probe: Probe,
+    pub listening: Listening,
     pub quality: Quality,
     pub calibration: Calibration,
     pub input: PathBuf,
@@ -105,6 +115,13 @@ pub fn prepare(args: &RenderArgs) -> Result<Job, String> {
         .ok_or("give the output WAV: --output FILE")?;
     let mut circuit = load_circuit(args.circuit.as_deref())?;
     let probe = parse_probe(args.probe.as_deref(), &circuit)?;
+    let listening = Listening::parse(
+        args.listen.as_deref(),
+        args.cabinet.as_deref(),
+        Path::new(""),
+        "--listen",
+        "--cabinet",
+    )?;
     let calibration = args
         .calibration
         .apply(&mut circuit, &circuit_source(args.circuit.as_ref()))?;
@@ -120,11 +137,15 @@ pub fn prepare(args: &RenderArgs) -> Result<Job, String> {
     if let Some(c) = &args.circuit {
         inputs.push(("circuit", c.as_path()));
     }
+    if let CabinetChoice::File { path, .. } = &listening.cabinet {
+        inputs.push(("cabinet", path.as_path()));
+    }
     files::refuse_overwriting_inputs("--output", &output, &inputs)?;
     Ok(Job {
         circuit,
         settings,
         probe,
+        listening,
         quality,
         calibration,
         input,
@@ -150,7 +171,7 @@ pub fn render_channels(
             .zip(&audio.channels)
             .map(|(mut engine, input)| {
                 scope.spawn(move || {
-                    let out = render_one(&mut engine, input, job.probe, progress);
+                    let out = render_one(&mut engine, input, job.engine_probe(), progress);
                     (out, *engine.meters())
                 })
             })
@@ -164,6 +185,34 @@ pub fn render_channels(
             .collect::<Result<Vec<_>, _>>()
     })?;
     Ok(outputs)
+}
+
+impl Job {
+    /// What the engines write: the probe asked for, else the listening point's node.
+    pub fn engine_probe(&self) -> Probe {
+        if self.probe == Probe::Listen {
+            self.listening.probe()
+        } else {
+            self.probe
+        }
+    }
+
+    /// The engines' output as written: a probe as it is; the listening output scaled and through the cabinet.
+    pub fn finish(&self, channels: Vec<Vec<f32>>, rate: u32) -> Result<Vec<Vec<f32>>, String> {
+        if self.probe != Probe::Listen {
+            return Ok(channels);
+        }
+        let scale = self.listening.scale(&self.circuit) as f32;
+        let scaled = if scale == 1.0 {
+            channels
+        } else {
+            channels
+                .into_iter()
+                .map(|c| c.into_iter().map(|v| v * scale).collect())
+                .collect()
+        };
+        self.listening.through_cabinet(scaled, rate as f64)
+    }
 }
 
 /// One channel, latency removed: output[n] lines up with input[n] (as `Engine::render` does, in chunks).
@@ -211,7 +260,16 @@ pub fn run(args: RenderArgs) -> Result<(), String> {
     if input.is_silent() {
         eprintln!("note: '{shown}' is silent: the output is what the stage makes of silence");
     }
-    audio::check_size(&job.output, input.frames(), input.channels.len(), 4)?;
+    let ir_channels = match job.listening.heard_cabinet() {
+        CabinetChoice::File { ir, .. } if job.probe == Probe::Listen => ir.channels.len(),
+        _ => 1,
+    };
+    audio::check_size(
+        &job.output,
+        input.frames(),
+        input.channels.len().max(ir_channels),
+        4,
+    )?;
     let frames = input.frames();
     let total = (frames * input.channels.len()) as u64;
     let terminal = std::io::stderr().is_terminal();
@@ -241,7 +299,7 @@ pub fn run(args: RenderArgs) -> Result<(), String> {
     let (channels, meters): (Vec<Vec<f32>>, Vec<Meters>) = outputs.into_iter().unzip();
     let result = Audio {
         rate: input.rate,
-        channels,
+        channels: job.finish(channels, input.rate)?,
     };
     audio::write_wav_f32(&job.output, &result)?;
     let peak = result
@@ -252,9 +310,16 @@ pub fn run(args: RenderArgs) -> Result<(), String> {
     let what = match job.probe {
         Probe::Clamp => format!("clamp node volts, peak {}", si(peak as f64, "V")),
         Probe::Wiper => format!("wiper volts, peak {}", si(peak as f64, "V")),
-        _ => format!(
-            "listening output, peak {:.1} dBFS",
+        Probe::Listen => format!(
+            "listening output ({}), peak {:.1} dBFS",
+            job.listening.describe(&job.circuit),
             gain_to_db(peak as f64).max(-200.0)
+        ),
+        other => format!(
+            "{} {}, peak {}",
+            other.name(),
+            other.unit(),
+            si(peak as f64, other.unit())
         ),
     };
     let position = &job.circuit.clamp.position[job.settings.position].name;

@@ -464,3 +464,118 @@ fn demo_runs_from_an_empty_folder() {
         }
     }
 }
+
+#[test]
+fn report_says_what_the_clips_were_heard_through() {
+    let out = full_run();
+    let json = std::fs::read_to_string(out.join("report.json")).unwrap();
+    let v: serde_json::Value = serde_json::from_str(&json).unwrap();
+    assert_eq!(v["listen"], "chain");
+    assert_eq!(v["cabinet"], "builtin");
+    let words = v["listening"].as_str().unwrap();
+    assert!(
+        words.contains("tone stack") && words.contains("built-in cabinet"),
+        "{words}"
+    );
+    let html = std::fs::read_to_string(out.join("report.html")).unwrap();
+    assert!(
+        html.contains(words),
+        "the HTML report names the listening point"
+    );
+}
+
+/// A plan's `listen` and `cabinet` give the clips `render` gives with `--listen` and `--cabinet`.
+#[test]
+fn plan_listening_keys_match_render() {
+    for (name, keys, render_args) in [
+        ("wiper", "listen = \"wiper\"", vec!["--listen", "wiper"]),
+        ("ir", "cabinet = \"ir.wav\"", vec!["--cabinet", "IR"]),
+    ] {
+        let dir = scratch(&format!("listen-{name}"));
+        write_di(&dir.join("take.wav"), 1.5, 0.3);
+        let ir = dir.join("ir.wav");
+        let h: Vec<f32> = (0..64)
+            .map(|n| ((-(n as f64) / 10.0).exp() * (0.7 * n as f64).cos()) as f32)
+            .collect();
+        common::write_float(&ir, 44_100, &h);
+        let plan = format!(
+            "di = [\"take.wav\"]\noutput = \"out\"\n{keys}\ngain = 0.7\nquality = 2\n\n[input]\nvolts_at_full_scale = 1.0\n\n\
+             [[variant]]\nname = \"sym\"\nposition = 1\n"
+        );
+        std::fs::write(dir.join("plan.toml"), plan).unwrap();
+        let out = run(&[
+            "compare",
+            "--quiet",
+            dir.join("plan.toml").to_str().unwrap(),
+        ]);
+        assert!(
+            out.status.success(),
+            "{}",
+            String::from_utf8_lossy(&out.stderr)
+        );
+        let json: serde_json::Value =
+            serde_json::from_str(&std::fs::read_to_string(dir.join("out/report.json")).unwrap())
+                .unwrap();
+        let rendered = dir.join("render.wav");
+        let mut args: Vec<String> = [
+            "render",
+            "--input",
+            dir.join("take.wav").to_str().unwrap(),
+            "--output",
+            rendered.to_str().unwrap(),
+            "--set",
+            "gain=0.7",
+            "--set",
+            "position=1",
+            "--quality",
+            "2",
+            "--volts-at-full-scale",
+            "1.0",
+        ]
+        .map(String::from)
+        .to_vec();
+        for a in &render_args {
+            args.push(if *a == "IR" {
+                ir.to_str().unwrap().into()
+            } else {
+                a.to_string()
+            });
+        }
+        let args: Vec<&str> = args.iter().map(String::as_str).collect();
+        let r = run(&args);
+        assert!(r.status.success(), "{}", String::from_utf8_lossy(&r.stderr));
+        let (_, clip) = read_wav(&dir.join("out/unmatched/take_sym.wav"));
+        let (_, direct) = read_wav(&rendered);
+        assert_eq!(clip.len(), direct.len());
+        let worst = clip
+            .iter()
+            .flatten()
+            .zip(direct.iter().flatten())
+            .map(|(a, b)| (a - b).abs())
+            .fold(0.0f32, f32::max);
+        assert!(
+            worst < 1e-6,
+            "{name}: the clip differs from render by {worst}"
+        );
+        match name {
+            "wiper" => assert_eq!(json["listen"], "wiper"),
+            _ => assert_eq!(json["cabinet"], "ir.wav"),
+        }
+    }
+}
+
+#[test]
+fn bad_cabinet_key_is_named_with_its_line() {
+    expect_plan_error(
+        "cabinet",
+        &PLAN.replace("gain = 1.0", "cabinet = \"nope.wav\""),
+        5,
+        &["cabinet", "nope.wav"],
+    );
+    expect_plan_error(
+        "listen",
+        &PLAN.replace("gain = 1.0", "listen = \"speaker\""),
+        5,
+        &["listen", "speaker"],
+    );
+}

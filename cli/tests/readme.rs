@@ -100,6 +100,11 @@ fn every_command_line_example_runs() {
     for name in ["take1.wav", "take2.wav"] {
         write_di(&dir.join(name));
     }
+    // The impulse response the README's `--cabinet my-cab.wav` line stands for: a short decaying test response.
+    let response: Vec<f32> = (0..256)
+        .map(|n| ((-(n as f64) / 40.0).exp() * (0.3 * n as f64).cos()) as f32)
+        .collect();
+    write_float(&dir.join("my-cab.wav"), 48_000, &response);
     // The plan the README's `compare plan.toml` line refers to is the plan example below it.
     let plan = blocks(README, "toml")
         .into_iter()

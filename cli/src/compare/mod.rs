@@ -14,6 +14,7 @@ pub mod tone;
 
 use crate::audio::{self, Audio, Silence};
 use crate::files::{self, Temporary};
+use crate::listening::CabinetChoice;
 use crate::report::{
     self, AbSegment, DiInfo, DiResult, PartInfo, PartLoad, Report, VariantInfo, ZenerLoad,
 };
@@ -384,19 +385,21 @@ fn render_job(s: &Shared, di_index: usize, vi: usize) -> Result<DiResult, String
         } else {
             (usize::MAX, usize::MAX)
         };
-        engine.set_active_probes(&[Probe::Listen]);
+        let heard = plan.listening.probe();
+        let scale = plan.listening.scale(&variant.circuit);
+        engine.set_active_probes(&[heard]);
         let _flush = breakdown_dsp::denormals::FlushGuard::new();
         let mut out = Vec::with_capacity(frames);
         for n in 0..frames + latency {
             if n == clamp_on {
-                engine.set_active_probes(&[Probe::Listen, Probe::Clamp]);
+                engine.set_active_probes(&[heard, Probe::Clamp]);
             } else if n == clamp_off {
-                engine.set_active_probes(&[Probe::Listen]);
+                engine.set_active_probes(&[heard]);
             }
             let x = samples.get(n).copied().unwrap_or(0.0);
             let frame = engine.process_sample(x);
             if n >= latency {
-                out.push(frame.listen as f32);
+                out.push(plan.listening.value(frame, scale) as f32);
                 let m = n - latency;
                 if c == scope_channel && m >= scope_start && m < scope_start + scope_len {
                     scope.push(frame.clamp_volts as f32);
@@ -417,6 +420,11 @@ fn render_job(s: &Shared, di_index: usize, vi: usize) -> Result<DiResult, String
         outputs.push(out);
     }
     let m = combine(&meters);
+    // The chain's cabinet over the whole clip (a stereo response makes a mono DI stereo).
+    let outputs = plan
+        .listening
+        .through_cabinet(outputs, input.rate as f64)
+        .map_err(|e| format!("variant '{}': {e}", variant.name))?;
 
     // Crest factor of the listening output over all channels.
     let (mut peak, mut square, mut count) = (0.0f64, 0.0f64, 0usize);
@@ -579,6 +587,14 @@ fn variant_infos(plan: &Plan) -> Result<Vec<VariantInfo>, String> {
         .collect()
 }
 
+/// Channels the chain's cabinet makes of a mono DI: 2 with a stereo impulse response, else 1.
+fn plan_output_channels(plan: &Plan) -> usize {
+    match plan.listening.heard_cabinet() {
+        CabinetChoice::File { ir, .. } => ir.channels.len(),
+        _ => 1,
+    }
+}
+
 /// The inputs a plan names, for the output checks: (what, path).
 fn plan_inputs(plan: &Plan) -> Vec<(String, PathBuf)> {
     let mut inputs = vec![("plan".to_string(), plan.path.clone())];
@@ -587,6 +603,9 @@ fn plan_inputs(plan: &Plan) -> Vec<(String, PathBuf)> {
     }
     if let Some(c) = &plan.circuit_path {
         inputs.push(("circuit file".into(), c.clone()));
+    }
+    if let CabinetChoice::File { path, .. } = &plan.listening.cabinet {
+        inputs.push(("cabinet".into(), path.clone()));
     }
     inputs
 }
@@ -843,6 +862,9 @@ fn build_report(
             .clone()
             .unwrap_or_else(|| plan.path.display().to_string()),
         circuit: plan.circuit_label.clone(),
+        listening: plan.listening.describe(&plan.variants[0].circuit),
+        listen: plan.listening.names().0.into(),
+        cabinet: plan.listening.names().1,
         target_lufs: plan.target_lufs,
         true_peak_ceiling_dbtp: loudness::TRUE_PEAK_CEILING_DBTP,
         loudness_method: "EBU R128 integrated loudness (ITU-R BS.1770-4 K-weighting and gating), true peak \
@@ -914,7 +936,10 @@ pub fn run_plan(plan_path: &Path, options: Options) -> Result<Outcome, String> {
     let (scopes, layouts) = layouts_of(&plan, &inputs);
     let clips: Vec<Mutex<Vec<Vec<f32>>>> = inputs
         .iter()
-        .map(|a| Mutex::new(vec![vec![0.0f32; a.frames()]; a.channels.len()]))
+        .map(|a| {
+            let channels = a.channels.len().max(plan_output_channels(&plan));
+            Mutex::new(vec![vec![0.0f32; a.frames()]; channels])
+        })
         .collect();
     let (jobs, total, rendered_samples) = schedule(&plan, &inputs);
     let progress = progress_bar(total);

@@ -5,6 +5,8 @@
 //! circuit = "builtin"               # or a circuit file, relative to this plan
 //! output = "compare-out"            # output folder, relative to this plan
 //! target_lufs = -18.0               # loudness target of the matched files (EBU R128)
+//! listen = "chain"                  # what the clips play: "chain" (tone stack, then cabinet) or "wiper"
+//! cabinet = "builtin"               # the chain's cabinet: "builtin", "none" or an impulse-response WAV
 //!
 //! [input]                           # the input calibration; overrides the circuit file's [input]
 //! volts_at_full_scale = 1.0         # peak volts at the input jack for a 0 dBFS sample ...
@@ -33,6 +35,7 @@
 //! and what was expected. The command line's --volts-at-full-scale / --input-dbu override the plan's
 //! calibration, which overrides the circuit file's.
 
+use crate::listening::Listening;
 use crate::options::{check_calibration_dbu, check_calibration_volts, parse_circuit, Calibration};
 use breakdown_dsp::circuit::{SwitchPosition, ZenerSpec, ZENER_VOLTS};
 use breakdown_dsp::units::{clip, si};
@@ -64,6 +67,8 @@ struct RawPlan {
     circuit: Option<Leaf>,
     output: Option<Leaf>,
     target_lufs: Option<Leaf>,
+    listen: Option<Leaf>,
+    cabinet: Option<Leaf>,
     gain: Option<Leaf>,
     level: Option<Leaf>,
     quality: Option<Leaf>,
@@ -179,6 +184,8 @@ pub struct Plan {
     /// Where the plan names the output folder (None when it was given on the command line).
     pub output_line: Option<usize>,
     pub target_lufs: f64,
+    /// What every clip plays (the listening point and the cabinet).
+    pub listening: Listening,
     pub calibration: Calibration,
     pub tone_peak_volts: f64,
     pub segment_seconds: f64,
@@ -451,7 +458,8 @@ fn friendly(message: &str) -> String {
         ),
         (
             "struct RawPlan",
-            "a plan (keys di, circuit, output, target_lufs, gain, level, quality, [input], [ab], [[variant]])",
+            "a plan (keys di, circuit, output, target_lufs, listen, cabinet, gain, level, quality, [input], [ab], \
+             [[variant]])",
         ),
         ("a sequence", "a list of [[variant]] tables"),
     ] {
@@ -905,6 +913,39 @@ fn read_variants(ctx: &Ctx, raw: &RawPlan, circuit: &Circuit) -> Result<Vec<Vari
     Ok(variants)
 }
 
+/// `listen` and `cabinet` (a cabinet file relative to the plan), with the line of whichever is wrong.
+fn read_listening(
+    ctx: &Ctx,
+    dir: &Path,
+    listen: Option<&Leaf>,
+    cabinet: Option<&Leaf>,
+) -> Result<Listening, String> {
+    let listen_text = listen
+        .map(|l| text_of(ctx, "listen", l, "\"chain\" or \"wiper\""))
+        .transpose()?;
+    let cabinet_text = cabinet
+        .map(|c| {
+            text_of(
+                ctx,
+                "cabinet",
+                c,
+                "\"builtin\", \"none\" or an impulse-response WAV file name",
+            )
+        })
+        .transpose()?;
+    Listening::parse(listen_text, cabinet_text, dir, "listen =", "cabinet =").map_err(|e| {
+        let span = if e.starts_with("listen") {
+            listen.map(|l| l.span())
+        } else {
+            cabinet.or(listen).map(|c| c.span())
+        };
+        match span {
+            Some(span) => ctx.at(span, e),
+            None => format!("{}: {e}", ctx.shown),
+        }
+    })
+}
+
 /// Check a plan's text; relative paths resolve against the folder of `path`.
 pub fn parse(path: &Path, text: &str, output_override: Option<&Path>) -> Result<Plan, String> {
     let ctx = Ctx {
@@ -932,6 +973,7 @@ pub fn parse(path: &Path, text: &str, output_override: Option<&Path>) -> Result<
         })
         .transpose()?
         .unwrap_or(DEFAULT_TARGET_LUFS);
+    let listening = read_listening(&ctx, &dir, raw.listen.as_ref(), raw.cabinet.as_ref())?;
     let label = if circuit_path.is_some() {
         "circuit file".to_string()
     } else {
@@ -949,6 +991,7 @@ pub fn parse(path: &Path, text: &str, output_override: Option<&Path>) -> Result<
         output,
         output_line,
         target_lufs,
+        listening,
         calibration,
         tone_peak_volts,
         segment_seconds,

@@ -111,10 +111,11 @@ fn head(h: &mut String, report: &Report) {
     let _ = write!(
         h,
         "<h1>Breakdown comparison report</h1>\n<p class=\"meta\">{} &middot; plan <code>{}</code> &middot; circuit: {} \
-         &middot; input calibration {} peak at the jack for 0 dBFS (0 dBFS = {:+.1} dBu), from {}</p>\n",
+         &middot; clips heard at: {} &middot; input calibration {} peak at the jack for 0 dBFS (0 dBFS = {:+.1} dBu), from {}</p>\n",
         esc(&report.tool),
         esc(&report.plan),
         esc(&report.circuit),
+        esc(&report.listening),
         esc(&si(report.input_volts_at_full_scale, "V")),
         report.input_dbu_at_full_scale,
         esc(&report.input_calibration_source)

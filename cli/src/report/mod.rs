@@ -16,6 +16,12 @@ pub struct Report {
     pub tool: String,
     pub plan: String,
     pub circuit: String,
+    /// What every clip plays, in words (listening point and cabinet).
+    pub listening: String,
+    /// The listening point: "chain" or "wiper".
+    pub listen: String,
+    /// The chain's cabinet: "builtin", "none" or the impulse response's file name.
+    pub cabinet: String,
     pub target_lufs: f64,
     pub true_peak_ceiling_dbtp: f64,
     pub loudness_method: String,
