@@ -806,8 +806,10 @@ fn finish_di(
     )?;
     let mut text = format!(
         "Key for {clip_name} (blind A/B clip of {}): listen first, then check.\n\
+         Heard at: {}.\n\
          Segments of {} s; {}.\n\n",
         entry.name,
+        plan.listening.describe(&plan.variants[0].circuit),
         plan.segment_seconds,
         match plan.marker {
             plan::Marker::Tick => "a 20 ms crossfade with a short tick between segments",
