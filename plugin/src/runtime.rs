@@ -528,8 +528,12 @@ impl CabinetStage {
         }
         false
     }
-    /// Start fading to `to` (a change already fading is retired first; the bin has room for both).
+    /// Start fading to `to` (a change already fading is retired first; the bin has room for both). Already
+    /// fading to no cabinet, a second "none" lets that fade go on.
     fn fade_to(&mut self, to: Option<Box<CabinetBuild>>) {
+        if to.is_none() && matches!(self.next, Some(None)) {
+            return;
+        }
         if let Some(Some(old)) = self.next.take() {
             self.retire(old);
         }
