@@ -36,7 +36,8 @@ use clap_sys::process::{clap_process, CLAP_PROCESS_ERROR};
 use clap_sys::stream::{clap_istream, clap_ostream};
 use clap_sys::version::CLAP_VERSION;
 use plugin_host::{
-    c_text, di_signal, ensure_bundles, max_diff, peak, reference_render, PluginSettings,
+    c_text, di_signal, ensure_bundles, max_diff, peak, reference_chain_render, reference_render,
+    PluginSettings,
 };
 use std::ffi::{c_char, c_void, CStr, CString};
 use std::ptr;
@@ -616,7 +617,8 @@ impl Drop for Instance {
     }
 }
 
-/// Settings for an exact comparison: one position heard, level match off, A/B off, wiper, no trim.
+/// Settings for an exact comparison: one position heard, level match off, A/B off, the listening chain without
+/// its cabinet (the model's listening output), no trim.
 fn exact_settings(inst: &Instance, s: &PluginSettings) {
     let switch = format!("{}", s.position);
     let quality = match s.quality {
@@ -635,7 +637,8 @@ fn exact_settings(inst: &Instance, s: &PluginSettings) {
         ("Switch position", &switch),
         ("A/B: hear compare-with", "Off"),
         ("Level match", "Off"),
-        ("Listening point", "Wiper"),
+        ("Listening point", "Tone stack + cabinet"),
+        ("Cabinet", "None"),
         ("Output trim", "0"),
         ("Quality", quality),
     ];
@@ -880,6 +883,7 @@ fn automating_every_parameter_keeps_the_output_finite() {
         "Output trim",
         "Quality",
         "Listening point",
+        "Cabinet",
         "Level match",
         "Run all positions",
     ] {
@@ -1008,13 +1012,14 @@ fn saved_state_reloads_into_a_fresh_instance_with_identical_output() {
 }
 
 /// Damaged states (truncated, random bytes, a wrong length, a newer version of our own field) never crash; the
-/// instance keeps processing; a state whose `breakdown` field is from a newer version loads as the defaults.
+/// instance keeps processing; a state whose `breakdown` field is from a newer version loads as the defaults
+/// (the default listening chain: the model's listening output through the built-in cabinet).
 #[test]
 fn damaged_state_loads_defaults_and_keeps_processing() {
     let rate = 48_000.0;
     let defaults = PluginSettings::default();
     let input = di_signal(rate, 0.15, 0.7);
-    let (reference, model_latency) = reference_render(rate, defaults, &input);
+    let (reference, model_latency) = reference_chain_render(rate, defaults, &input);
 
     let changed = Instance::new();
     changed.flush(&[
