@@ -89,7 +89,8 @@ pub struct SlotReadout {
 pub struct Shared {
     /// Clamp-node volts of the heard position (host rate).
     pub scope: Ring,
-    /// Listening-point signal of the heard position (full-scale units, host rate).
+    /// What is heard at the listening point (after the cabinet at the chain; before the output trim), one
+    /// channel (full-scale units, host rate).
     pub listen: Ring,
     pub slots: [SlotReadout; SLOTS],
     /// The runtime slot heard (a position index, or `session::CANDIDATE`).

@@ -765,3 +765,32 @@ fn changing_the_cabinet_crossfades() {
         assert_eq!(out[n], listen[n] as f32, "sample {n}");
     }
 }
+
+/// A new activation at another rate (the plugin keeps its worker and session across activations) builds the
+/// cabinet again at the new rate: the loaded response plays as `Cabinet::new` at 44.1 kHz, then at 96 kHz.
+#[test]
+fn a_new_activation_rebuilds_the_cabinet_at_its_rate() {
+    let bytes = float_wav(48_000, &invented_ir(48_000));
+    let session = Arc::new(Session::default());
+    session.load_ir(&bytes, "room.wav".into()).unwrap();
+    let wav = breakdown_dsp::wav::parse(&bytes, "room.wav", &Default::default()).unwrap();
+    let ir = ImpulseResponse {
+        channels: wav.audio.channels,
+        sample_rate: wav.audio.rate as f64,
+    };
+    let controls = Controls {
+        cabinet: CabinetChoice::Loaded,
+        ..Controls::default()
+    };
+    let worker = Arc::new(Worker::new(session.clone()));
+    for rate in [44_100.0, 96_000.0] {
+        let shared = Arc::new(Shared::default());
+        let mut p = Processor::new(rate, 1, &controls, worker.clone(), shared).unwrap();
+        let input = guitar_like(rate, 0.15);
+        let out = run(&mut p, &controls, &input, 256, 1);
+        worker.service();
+        let listen: Vec<f64> = engine_frames(rate, &input).iter().map(|f| f.0).collect();
+        let reference = through(Cabinet::new(&ir, rate, 1).unwrap(), &listen, 1);
+        assert_close(&out, &reference, &format!("{rate} Hz"));
+    }
+}
