@@ -5,6 +5,7 @@
 
 pub mod analysis;
 pub mod editor;
+pub mod ir;
 pub mod loudness;
 pub mod params;
 pub mod presets;

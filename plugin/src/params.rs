@@ -54,10 +54,17 @@ impl QualityChoice {
     }
 }
 
-/// Which node the output carries.
+/// Which node the output carries. Saved states and presets hold the ids ("chain", "wiper", "clamp"), so the
+/// order here (the host's 0..1 steps) can change without changing what a saved session means.
 #[derive(Enum, Debug, Clone, Copy, PartialEq, Eq)]
 pub enum ListenPoint {
-    /// The level pot's wiper: what the next stage of the amp receives.
+    /// The listening chain: the engine's listening output (the tone stack's output when the circuit has a
+    /// `[tone_stack]`, else the level pot's wiper, over `[listen] volts_at_full_scale`) through the cabinet.
+    #[id = "chain"]
+    #[name = "Tone stack + cabinet"]
+    Chain,
+    /// The bare level pot wiper (over `[listen] volts_at_full_scale`): what the next stage of the amp
+    /// receives, before any tone stack and cabinet.
     #[id = "wiper"]
     #[name = "Wiper"]
     Wiper,
@@ -65,6 +72,31 @@ pub enum ListenPoint {
     #[id = "clamp"]
     #[name = "Clamp node"]
     ClampNode,
+}
+
+impl ListenPoint {
+    pub const ALL: [ListenPoint; 3] = [
+        ListenPoint::Chain,
+        ListenPoint::Wiper,
+        ListenPoint::ClampNode,
+    ];
+}
+
+/// The speaker cabinet of the listening chain.
+#[derive(Enum, Debug, Clone, Copy, PartialEq, Eq)]
+pub enum CabinetChoice {
+    /// The dsp crate's built-in response (`Cabinet::builtin`).
+    #[id = "builtin"]
+    #[name = "Built-in"]
+    BuiltIn,
+    /// The impulse response loaded into the session (the built-in one while none is loaded).
+    #[id = "loaded"]
+    #[name = "Loaded IR"]
+    Loaded,
+    /// No cabinet: the chain ends at the tone stack's output.
+    #[id = "none"]
+    #[name = "None"]
+    None,
 }
 
 /// The Zener family the candidate's knee data and rating come from (the command line's `--family` names).
@@ -138,6 +170,9 @@ pub struct BreakdownParams {
     pub quality: EnumParam<QualityChoice>,
     #[id = "listen"]
     pub listen: EnumParam<ListenPoint>,
+    /// The cabinet after the tone stack (heard at the `chain` listening point).
+    #[id = "cabinet"]
+    pub cabinet: EnumParam<CabinetChoice>,
     /// Keep every position at the same K-weighted short-term loudness.
     #[id = "level_match"]
     pub level_match: BoolParam,
@@ -246,7 +281,8 @@ impl Default for BreakdownParams {
             .with_unit(" dB")
             .with_value_to_string(formatters::v2s_f32_rounded(1)),
             quality: EnumParam::new("Quality", QualityChoice::X4),
-            listen: EnumParam::new("Listening point", ListenPoint::Wiper),
+            listen: EnumParam::new("Listening point", ListenPoint::Chain),
+            cabinet: EnumParam::new("Cabinet", CabinetChoice::BuiltIn),
             level_match: toggle("Level match", false),
             run_all: toggle("Run all positions", true),
             session,
@@ -305,7 +341,8 @@ pub fn controls_from(params: &BreakdownParams) -> Controls {
             family: params.candidate_family.value(),
         },
         quality: params.quality.value().quality(),
-        listen_clamp: params.listen.value() == ListenPoint::ClampNode,
+        listen: params.listen.value(),
+        cabinet: params.cabinet.value(),
         level_match: params.level_match.value(),
         run_all: params.run_all.value(),
     }
@@ -349,6 +386,7 @@ impl BreakdownParams {
             "trim" => Kind::Float(&self.trim),
             "quality" => choice(&self.quality),
             "listen" => choice(&self.listen),
+            "cabinet" => choice(&self.cabinet),
             "level_match" => Kind::Bool(&self.level_match),
             "run_all" => Kind::Bool(&self.run_all),
             _ => return None,
@@ -379,7 +417,7 @@ mod tests {
     fn every_parameter_id_has_a_kind() {
         let p = BreakdownParams::default();
         let ids: Vec<String> = p.param_map().into_iter().map(|(id, _, _)| id).collect();
-        assert_eq!(ids.len(), 18);
+        assert_eq!(ids.len(), 19);
         for id in &ids {
             assert!(p.kind(id).is_some(), "{id}");
         }

@@ -10,10 +10,11 @@
 //! model running the positions side by side without touching the rest.
 
 use crate::loudness::ShortTerm;
-use crate::params::FamilyChoice;
+use crate::params::{CabinetChoice, FamilyChoice, ListenPoint};
 use crate::session::{CircuitKey, Session, CANDIDATE};
 use crate::shared::{Shared, SLOTS};
 use atomic_float::AtomicF64;
+use breakdown_dsp::cabinet::Cabinet;
 use breakdown_dsp::circuit::{SwitchPosition, ZenerSpec};
 use breakdown_dsp::engine::CLAMPED_CURRENT;
 use breakdown_dsp::smoothing::Glide;
@@ -21,7 +22,7 @@ use breakdown_dsp::units::{db_to_gain, gain_to_db};
 use breakdown_dsp::Knob;
 use breakdown_dsp::{Circuit, Engine, Probe, Quality, Settings};
 use std::ptr;
-use std::sync::atomic::{AtomicBool, AtomicPtr, AtomicU32, AtomicUsize, Ordering};
+use std::sync::atomic::{AtomicBool, AtomicPtr, AtomicU32, AtomicU64, AtomicUsize, Ordering};
 use std::sync::{Arc, Mutex};
 
 /// Crossfade time for switching positions, listening points and swapping in rebuilt models (s).
@@ -86,8 +87,10 @@ pub struct Controls {
     pub ab: bool,
     pub candidate: Candidate,
     pub quality: Quality,
-    /// Listen to the clamp node instead of the wiper.
-    pub listen_clamp: bool,
+    /// The listening point heard.
+    pub listen: ListenPoint,
+    /// The cabinet at the end of the chain (heard at `ListenPoint::Chain`).
+    pub cabinet: CabinetChoice,
     pub level_match: bool,
     /// Run every position all the time (instant comparison). When false, only the heard position and the
     /// compare-with position run; others restart from rest when selected.
@@ -121,7 +124,8 @@ impl Default for Controls {
                 family: FamilyChoice::OneWatt,
             },
             quality: Quality::X4,
-            listen_clamp: false,
+            listen: ListenPoint::Chain,
+            cabinet: CabinetChoice::BuiltIn,
             level_match: false,
             run_all: true,
         }
@@ -218,12 +222,32 @@ pub struct Models {
     pub spec: SlotSpec,
     pub sample_rate: f64,
     engines: Vec<Engine>,
-    /// Clamp-node volts to listening-output units (the circuit's `[listen] volts_at_full_scale`).
-    clamp_scale: f64,
+    /// Volts to listening-output units (1 / the circuit's `[listen] volts_at_full_scale`), for the wiper and
+    /// clamp-node listening points.
+    listen_scale: f64,
     pub parts: PartsInfo,
     /// A loudness meter for a slot that has none yet (a slot gets its meter with its first models, so slots
     /// the running circuit does not use hold no 3 s buffer); dropped with the models otherwise.
     meter: Option<Box<ShortTerm>>,
+}
+
+/// One sample of a slot's models on one channel.
+#[derive(Clone, Copy, Debug, Default, PartialEq)]
+pub struct Point {
+    /// The signal at each listening point (`listen_index`) in listening-output units, before the cabinet:
+    /// the engine's listening output (the tone stack's output), the wiper, the clamp node.
+    pub points: [f64; 3],
+    /// Clamp-node volts (for the scope).
+    pub clamp_volts: f64,
+}
+
+/// Index of a listening point in `Point::points`.
+pub fn listen_index(point: ListenPoint) -> usize {
+    match point {
+        ListenPoint::Chain => 0,
+        ListenPoint::Wiper => 1,
+        ListenPoint::ClampNode => 2,
+    }
 }
 
 /// One slot's meter window, over its channels.
@@ -270,8 +294,8 @@ impl Models {
         if calibration.is_finite() && calibration > 0.0 {
             engine.set_input_calibration(calibration);
         }
-        // The processor reads the listening output and the clamp node only: decimate just those two.
-        engine.set_active_probes(&[Probe::Listen, Probe::Clamp]);
+        // The processor reads the listening output, the wiper and the clamp node only: decimate just those.
+        engine.set_active_probes(&[Probe::Listen, Probe::Wiper, Probe::Clamp]);
         let position = &slot.clamp.position[0];
         let (threshold_positive, threshold_negative) = match engine.model().pair(0) {
             Some(pair) if !pair.is_open() => pair.thresholds_at(CLAMPED_CURRENT),
@@ -301,7 +325,7 @@ impl Models {
             spec,
             sample_rate,
             engines,
-            clamp_scale: 1.0 / slot.listen.volts_at_full_scale,
+            listen_scale: 1.0 / slot.listen.volts_at_full_scale,
             parts,
             meter: None,
         }))
@@ -327,25 +351,20 @@ impl Models {
         }
     }
 
-    /// One sample of channel `channel`: (listening output, clamp-node volts). `clamp_mix` 0 listens at the
-    /// wiper, 1 at the clamp node (scaled like the listening output), in between crossfades.
+    /// One sample of channel `channel`: the listening points' signals and the clamp-node volts.
     #[inline]
-    pub fn process(
-        &mut self,
-        channel: usize,
-        x: f32,
-        calibration: f64,
-        clamp_mix: f64,
-    ) -> (f64, f64) {
+    pub fn process(&mut self, channel: usize, x: f32, calibration: f64) -> Point {
         let e = &mut self.engines[channel];
         e.set_input_calibration(calibration);
         let f = e.process_sample(x);
-        let listen = if clamp_mix == 0.0 {
-            f.listen
-        } else {
-            f.listen * (1.0 - clamp_mix) + f.clamp_volts * self.clamp_scale * clamp_mix
-        };
-        (listen, f.clamp_volts)
+        Point {
+            points: [
+                f.listen,
+                f.wiper_volts * self.listen_scale,
+                f.clamp_volts * self.listen_scale,
+            ],
+            clamp_volts: f.clamp_volts,
+        }
     }
 
     /// Back to the operating point with silent history.
@@ -388,14 +407,189 @@ impl Models {
 }
 
 // ---------------------------------------------------------------------------------------------------------
-// Hand-over between the audio thread and the worker
+// The cabinet
 
-/// Single-slot lock-free exchange of a boxed model set.
-pub struct Mailbox {
-    slot: AtomicPtr<Models>,
+/// Which cabinet the chain ends in, as the audio thread asks for it.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub enum CabinetSpec {
+    /// No cabinet: the chain ends at the tone stack's output.
+    None,
+    BuiltIn,
+    /// The session's impulse response with this id (`Session::ir_id`, never 0).
+    Loaded(u32),
 }
 
-impl Default for Mailbox {
+impl CabinetSpec {
+    /// The cabinet for the choice `choice` when the session's response has id `ir` (0: none loaded, and the
+    /// `loaded` choice plays the built-in response).
+    pub fn of(choice: CabinetChoice, ir: u32) -> CabinetSpec {
+        match choice {
+            CabinetChoice::None => CabinetSpec::None,
+            CabinetChoice::BuiltIn => CabinetSpec::BuiltIn,
+            CabinetChoice::Loaded if ir == 0 => CabinetSpec::BuiltIn,
+            CabinetChoice::Loaded => CabinetSpec::Loaded(ir),
+        }
+    }
+
+    fn pack(self) -> u64 {
+        match self {
+            CabinetSpec::None => 0,
+            CabinetSpec::BuiltIn => 1,
+            CabinetSpec::Loaded(id) => (2 << 32) | id as u64,
+        }
+    }
+
+    fn unpack(word: u64) -> CabinetSpec {
+        match word >> 32 {
+            2 => CabinetSpec::Loaded(word as u32),
+            _ if word == 1 => CabinetSpec::BuiltIn,
+            _ => CabinetSpec::None,
+        }
+    }
+
+    /// For the editor: 0 none, 1 built-in, 2 loaded.
+    pub fn kind(self) -> u32 {
+        match self {
+            CabinetSpec::None => 0,
+            CabinetSpec::BuiltIn => 1,
+            CabinetSpec::Loaded(_) => 2,
+        }
+    }
+}
+
+/// A prepared cabinet and what it was built for (built off the audio thread).
+pub struct CabinetBuild {
+    pub spec: CabinetSpec,
+    pub sample_rate: f64,
+    pub channels: usize,
+    pub cabinet: Cabinet,
+}
+
+impl CabinetBuild {
+    /// Build the cabinet of `spec` (not `None`) at `sample_rate` for `channels` signal channels; a `Loaded`
+    /// spec needs the response `ir` (allocates: off the audio thread).
+    pub fn new(
+        spec: CabinetSpec,
+        ir: Option<&breakdown_dsp::cabinet::ImpulseResponse>,
+        sample_rate: f64,
+        channels: usize,
+    ) -> Result<Box<CabinetBuild>, String> {
+        let cabinet = match (spec, ir) {
+            (CabinetSpec::None, _) => return Err("no cabinet to build for 'none'".into()),
+            (CabinetSpec::BuiltIn, _) => Cabinet::builtin(sample_rate, channels),
+            (CabinetSpec::Loaded(_), Some(ir)) => Cabinet::new(ir, sample_rate, channels),
+            (CabinetSpec::Loaded(_), None) => {
+                return Err("the session's impulse response is no longer there".into())
+            }
+        }
+        .map_err(|e| e.to_string())?;
+        Ok(Box::new(CabinetBuild {
+            spec,
+            sample_rate,
+            channels,
+            cabinet,
+        }))
+    }
+}
+
+/// The cabinet at run time: the one playing (None: no cabinet) and one fading in over it.
+struct CabinetStage {
+    current: Option<Box<CabinetBuild>>,
+    /// Some while a change fades in: Some(None) fades to no cabinet.
+    next: Option<Option<Box<CabinetBuild>>>,
+    fade: usize,
+    wanted: CabinetSpec,
+    bin: [Option<Box<CabinetBuild>>; BIN],
+}
+
+impl CabinetStage {
+    fn spec(&self) -> CabinetSpec {
+        self.current.as_ref().map_or(CabinetSpec::None, |c| c.spec)
+    }
+    fn bin_room(&self) -> usize {
+        self.bin.iter().filter(|b| b.is_none()).count()
+    }
+    fn retire(&mut self, b: Box<CabinetBuild>) {
+        if let Some(place) = self.bin.iter_mut().find(|b| b.is_none()) {
+            *place = Some(b);
+        } else {
+            // Never reached: callers check bin_room first. Keep it rather than free on the audio thread.
+            std::mem::forget(b);
+        }
+    }
+    fn flush_bin(&mut self, returns: &Mailbox<CabinetBuild>) -> bool {
+        for place in self.bin.iter_mut() {
+            if let Some(b) = place.take() {
+                if let Err(b) = returns.offer(b) {
+                    *place = Some(b);
+                    return true;
+                }
+            }
+        }
+        false
+    }
+    /// Start fading to `to` (a change already fading is retired first; the bin has room for both). Already
+    /// fading to no cabinet, a second "none" lets that fade go on.
+    fn fade_to(&mut self, to: Option<Box<CabinetBuild>>) {
+        if to.is_none() && matches!(self.next, Some(None)) {
+            return;
+        }
+        if let Some(Some(old)) = self.next.take() {
+            self.retire(old);
+        }
+        self.next = Some(to);
+        self.fade = 0;
+    }
+    fn reset(&mut self) {
+        if let Some(c) = self.current.as_mut() {
+            c.cabinet.reset();
+        }
+        if let Some(Some(c)) = self.next.as_mut() {
+            c.cabinet.reset();
+        }
+    }
+
+    /// One sample through the cabinet (`[left, right]`; a mono signal is `input[0]`, and without a cabinet it
+    /// comes out on both sides), fading to the next one when there is one. True in the second value when a
+    /// fade finished (the worker has something to free).
+    #[inline]
+    fn process(&mut self, input: [f64; 2], mono: bool, fade_len: usize) -> ([f64; 2], bool) {
+        let bare = if mono { [input[0], input[0]] } else { input };
+        let run = |c: &mut Option<Box<CabinetBuild>>| match c {
+            Some(c) => c.cabinet.process(input),
+            None => bare,
+        };
+        let a = run(&mut self.current);
+        let Some(next) = self.next.as_mut() else {
+            return (a, false);
+        };
+        let b = run(next);
+        let w = fade_weight(self.fade as f64 / fade_len as f64);
+        let y = [a[0] + (b[0] - a[0]) * w, a[1] + (b[1] - a[1]) * w];
+        self.fade += 1;
+        let mut finished = false;
+        if self.fade >= fade_len {
+            if let Some(to) = self.next.take() {
+                if let Some(old) = std::mem::replace(&mut self.current, to) {
+                    self.retire(old);
+                }
+            }
+            self.fade = 0;
+            finished = true;
+        }
+        (y, finished)
+    }
+}
+
+// ---------------------------------------------------------------------------------------------------------
+// Hand-over between the audio thread and the worker
+
+/// Single-slot lock-free exchange of a boxed model set (or a prepared cabinet).
+pub struct Mailbox<T = Models> {
+    slot: AtomicPtr<T>,
+}
+
+impl<T> Default for Mailbox<T> {
     fn default() -> Self {
         Mailbox {
             slot: AtomicPtr::new(ptr::null_mut()),
@@ -403,15 +597,15 @@ impl Default for Mailbox {
     }
 }
 
-impl Mailbox {
+impl<T> Mailbox<T> {
     /// Put `b` in, returning what was there (worker side; the caller frees it).
-    pub fn replace(&self, b: Box<Models>) -> Option<Box<Models>> {
+    pub fn replace(&self, b: Box<T>) -> Option<Box<T>> {
         let old = self.slot.swap(Box::into_raw(b), Ordering::AcqRel);
         // SAFETY: every non-null pointer in the slot came from Box::into_raw and is owned by the slot.
         (!old.is_null()).then(|| unsafe { Box::from_raw(old) })
     }
     /// Put `b` in only if the slot is empty (audio side: never frees).
-    pub fn offer(&self, b: Box<Models>) -> Result<(), Box<Models>> {
+    pub fn offer(&self, b: Box<T>) -> Result<(), Box<T>> {
         let raw = Box::into_raw(b);
         match self
             .slot
@@ -423,14 +617,14 @@ impl Mailbox {
         }
     }
     /// Take what is there.
-    pub fn take(&self) -> Option<Box<Models>> {
+    pub fn take(&self) -> Option<Box<T>> {
         let old = self.slot.swap(ptr::null_mut(), Ordering::AcqRel);
         // SAFETY: as in `replace`.
         (!old.is_null()).then(|| unsafe { Box::from_raw(old) })
     }
 }
 
-impl Drop for Mailbox {
+impl<T> Drop for Mailbox<T> {
     fn drop(&mut self) {
         drop(self.take());
     }
@@ -464,6 +658,12 @@ pub struct Worker {
     /// until it has.
     metered: [AtomicBool; SLOTS],
     built_generation: Mutex<[u32; SLOTS]>,
+    /// The cabinet asked for (`CabinetSpec::pack`) and its request count.
+    cabinet_request: AtomicU64,
+    cabinet_generation: AtomicU32,
+    cabinet_built: AtomicU32,
+    pub cabinet_incoming: Mailbox<CabinetBuild>,
+    pub cabinet_returns: Mailbox<CabinetBuild>,
 }
 
 impl Default for Worker {
@@ -486,6 +686,11 @@ impl Worker {
             calibration: AtomicF64::new(1.0),
             metered: Default::default(),
             built_generation: Mutex::new([0; SLOTS]),
+            cabinet_request: AtomicU64::new(CabinetSpec::BuiltIn.pack()),
+            cabinet_generation: AtomicU32::new(0),
+            cabinet_built: AtomicU32::new(0),
+            cabinet_incoming: Mailbox::default(),
+            cabinet_returns: Mailbox::default(),
         }
     }
 
@@ -519,6 +724,46 @@ impl Worker {
         self.calibration
             .store(controls.calibration, Ordering::Relaxed);
         r.generation.fetch_add(1, Ordering::Release);
+    }
+
+    /// Ask for the cabinet `spec` (audio thread: atomics only).
+    fn request_cabinet(&self, spec: CabinetSpec) {
+        self.cabinet_request.store(spec.pack(), Ordering::Relaxed);
+        self.cabinet_generation.fetch_add(1, Ordering::Release);
+    }
+
+    /// Build the cabinet asked for, if a new one was (background thread, under the build lock).
+    fn service_cabinet(&self) -> bool {
+        drop(self.cabinet_returns.take());
+        let generation = self.cabinet_generation.load(Ordering::Acquire);
+        if generation == self.cabinet_built.load(Ordering::Relaxed) {
+            return false;
+        }
+        self.cabinet_built.store(generation, Ordering::Relaxed);
+        let spec = CabinetSpec::unpack(self.cabinet_request.load(Ordering::Relaxed));
+        let (id, ir) = self.session.ir();
+        match spec {
+            CabinetSpec::None => return true,
+            // Asked for a response that is no longer running: the audio thread asks again.
+            CabinetSpec::Loaded(want) if want != id => return true,
+            _ => {}
+        }
+        match CabinetBuild::new(
+            spec,
+            ir.as_deref(),
+            self.sample_rate.load(Ordering::Relaxed),
+            self.channels.load(Ordering::Relaxed),
+        ) {
+            Ok(b) => drop(self.cabinet_incoming.replace(b)),
+            Err(e) => {
+                nice_plug::nice_warn!("Breakdown: could not build the cabinet: {e}");
+                self.session.set_ir_problem(
+                    id,
+                    format!("the cabinet could not be built at this session's rate: {e}"),
+                );
+            }
+        }
+        true
     }
 
     fn requested(&self, slot: usize) -> SlotSpec {
@@ -566,7 +811,7 @@ impl Worker {
             for returns in &self.returns {
                 drop(returns.take());
             }
-            let mut worked = false;
+            let mut worked = self.service_cabinet();
             for slot in 0..SLOTS {
                 let generation = self.requests[slot].generation.load(Ordering::Acquire);
                 if generation == built[slot] {
@@ -620,6 +865,12 @@ impl Worker {
             drop(self.returns[slot].take());
             self.metered[slot].store(false, Ordering::Release);
         }
+        self.cabinet_built.store(
+            self.cabinet_generation.load(Ordering::Acquire),
+            Ordering::Relaxed,
+        );
+        drop(self.cabinet_incoming.take());
+        drop(self.cabinet_returns.take());
     }
 }
 
@@ -643,8 +894,8 @@ struct Slot {
     /// None until the slot's first models brought one.
     loudness: Option<Box<ShortTerm>>,
     match_gain: Glide,
-    /// Per channel: (listening value, clamp volts) of the last sample.
-    out: [(f64, f64); 2],
+    /// Per channel: the listening points and clamp volts of the last sample.
+    out: [Point; 2],
     /// Running this block.
     active: bool,
     /// The parts shown changed (publish after the block).
@@ -692,7 +943,7 @@ impl Slot {
         if let Some(l) = self.loudness.as_mut() {
             l.reset();
         }
-        self.out = [(0.0, 0.0); 2];
+        self.out = [Point::default(); 2];
     }
 }
 
@@ -705,10 +956,53 @@ pub struct BlockActions {
     pub latency: Option<u32>,
 }
 
-/// Per-block targets of the glides.
-#[derive(Clone, Copy)]
-struct Targets {
-    listen: f64,
+/// The listening point's crossfade: weights of the points (`listen_index`), moving from `from` to the one
+/// `to` over the fade (a change during a fade starts from where the weights are, so they stay continuous and
+/// sum to 1).
+#[derive(Clone, Copy, Debug)]
+struct ListenFade {
+    from: [f64; 3],
+    to: usize,
+    step: usize,
+}
+
+impl ListenFade {
+    fn at(point: ListenPoint, fade_len: usize) -> ListenFade {
+        let to = listen_index(point);
+        let mut from = [0.0; 3];
+        from[to] = 1.0;
+        ListenFade {
+            from,
+            to,
+            step: fade_len,
+        }
+    }
+    fn weights(&self, fade_len: usize) -> [f64; 3] {
+        let mut w = [0.0; 3];
+        if self.step >= fade_len {
+            w[self.to] = 1.0;
+            return w;
+        }
+        let t = fade_weight(self.step as f64 / fade_len as f64);
+        for (k, wk) in w.iter_mut().enumerate() {
+            let target = if k == self.to { 1.0 } else { 0.0 };
+            *wk = self.from[k] + (target - self.from[k]) * t;
+        }
+        w
+    }
+    fn retarget(&mut self, point: ListenPoint, fade_len: usize) {
+        let to = listen_index(point);
+        if to != self.to {
+            self.from = self.weights(fade_len);
+            self.to = to;
+            self.step = 0;
+        }
+    }
+    fn advance(&mut self, fade_len: usize) {
+        if self.step < fade_len {
+            self.step += 1;
+        }
+    }
 }
 
 /// The real-time processor for one activation (sample rate, channel layout).
@@ -723,8 +1017,12 @@ pub struct Processor {
     previous: usize,
     heard_fade: usize,
     fade_len: usize,
-    listen_mix: f64,
-    listen_step: f64,
+    listen: ListenFade,
+    /// The listening points' weights for the sample being processed.
+    weights: [f64; 3],
+    cabinet: CabinetStage,
+    /// The cabinet was fed last sample (it is fed silence while the chain is not heard).
+    cabinet_fed: bool,
     calibration: Glide,
     trim: Glide,
     tone: [Glide; 3],
@@ -784,7 +1082,7 @@ impl Processor {
                 bin: Default::default(),
                 loudness,
                 match_gain: Glide::new(1.0, MATCH_GLIDE_SECONDS, sample_rate),
-                out: [(0.0, 0.0); 2],
+                out: [Point::default(); 2],
                 active: true,
                 changed: true,
             });
@@ -801,6 +1099,40 @@ impl Processor {
             .unwrap_or(0);
         let glide = |v: f64| Glide::new(v, CONTROL_GLIDE_SECONDS, sample_rate);
         let p = &controls.pots;
+        let wanted = CabinetSpec::of(controls.cabinet, session.ir_id());
+        let (ir_id, ir) = session.ir();
+        let current = match wanted {
+            CabinetSpec::None => None,
+            CabinetSpec::Loaded(id) if id != ir_id => Some(CabinetBuild::new(
+                CabinetSpec::BuiltIn,
+                None,
+                sample_rate,
+                channels,
+            )?),
+            spec => match CabinetBuild::new(spec, ir.as_deref(), sample_rate, channels) {
+                Ok(b) => Some(b),
+                Err(e) => {
+                    // Keep playing: the built-in cabinet, with the reason shown in the editor.
+                    session.set_ir_problem(
+                        ir_id,
+                        format!("the cabinet could not be built at this session's rate: {e}"),
+                    );
+                    Some(CabinetBuild::new(
+                        CabinetSpec::BuiltIn,
+                        None,
+                        sample_rate,
+                        channels,
+                    )?)
+                }
+            },
+        };
+        let cabinet = CabinetStage {
+            current,
+            next: None,
+            fade: 0,
+            wanted,
+            bin: Default::default(),
+        };
         let mut processor = Processor {
             sample_rate,
             channels,
@@ -811,8 +1143,10 @@ impl Processor {
             previous: heard,
             heard_fade: fade_len,
             fade_len,
-            listen_mix: if controls.listen_clamp { 1.0 } else { 0.0 },
-            listen_step: 1.0 / fade_len as f64,
+            listen: ListenFade::at(controls.listen, fade_len),
+            weights: ListenFade::at(controls.listen, fade_len).weights(fade_len),
+            cabinet,
+            cabinet_fed: false,
             calibration: glide(controls.calibration),
             trim: glide(db_to_gain(controls.trim_db)),
             tone: [glide(p.treble), glide(p.middle), glide(p.bass)],
@@ -841,6 +1175,15 @@ impl Processor {
         self.sample_rate
     }
 
+    /// The cabinet playing (the one fading in while a change fades).
+    pub fn cabinet_spec(&self) -> CabinetSpec {
+        match &self.cabinet.next {
+            Some(Some(b)) => b.spec,
+            Some(None) => CabinetSpec::None,
+            None => self.cabinet.spec(),
+        }
+    }
+
     /// The runtime slot heard (a position index or CANDIDATE).
     pub fn heard(&self) -> usize {
         self.heard
@@ -857,7 +1200,10 @@ impl Processor {
         self.heard = self.key.slot_of(controls.heard_value());
         self.previous = self.heard;
         self.heard_fade = self.fade_len;
-        self.listen_mix = if controls.listen_clamp { 1.0 } else { 0.0 };
+        self.listen = ListenFade::at(controls.listen, self.fade_len);
+        self.weights = self.listen.weights(self.fade_len);
+        self.cabinet.reset();
+        self.cabinet_fed = false;
         self.calibration.jump(controls.calibration);
         self.trim.jump(db_to_gain(controls.trim_db));
         let p = &controls.pots;
@@ -883,13 +1229,13 @@ impl Processor {
         }
         self.follow_switch(controls);
         self.choose_running(controls);
-        let targets = self.set_targets(controls);
+        self.set_targets(controls);
         let _guard = breakdown_dsp::denormals::FlushGuard::new();
         for n in 0..frames {
             let inputs = self.read_frame(channels, n);
-            let clamp_mix = self.step_glides(targets);
-            self.run_slots(&inputs, clamp_mix, &mut actions);
-            let y = self.mix_heard();
+            self.step_glides();
+            self.run_slots(&inputs, &mut actions);
+            let y = self.mix_heard(&mut actions);
             self.write_frame(channels, n, y);
         }
         self.finish_block(frames, &mut actions);
@@ -958,6 +1304,48 @@ impl Processor {
                 .rebuilding
                 .store(rebuilding, Ordering::Relaxed);
         }
+        self.exchange_cabinet(controls, actions);
+    }
+
+    /// Pick up a prepared cabinet, ask for a new one, hand back retired ones. "None" needs no build: it
+    /// fades to the bare tone stack output at once.
+    fn exchange_cabinet(&mut self, controls: &Controls, actions: &mut BlockActions) {
+        let want = CabinetSpec::of(controls.cabinet, self.worker.session().ir_id());
+        let stage = &mut self.cabinet;
+        if want != stage.wanted && stage.bin_room() >= 2 {
+            stage.wanted = want;
+            if want == CabinetSpec::None {
+                if stage.current.is_some() || matches!(stage.next, Some(Some(_))) {
+                    stage.fade_to(None);
+                }
+            } else {
+                self.worker.request_cabinet(want);
+                actions.service_worker = true;
+            }
+        }
+        if stage.bin_room() >= 2 {
+            if let Some(b) = self.worker.cabinet_incoming.take() {
+                let fits = b.spec == stage.wanted
+                    && b.sample_rate == self.sample_rate
+                    && b.channels == self.channels;
+                if fits {
+                    stage.fade_to(Some(b));
+                } else {
+                    stage.retire(b);
+                }
+            }
+        }
+        actions.service_worker |= stage.flush_bin(&self.worker.cabinet_returns);
+        let running = self.cabinet_spec();
+        let (kind, ir) = match running {
+            CabinetSpec::Loaded(id) => (2, id),
+            other => (other.kind(), 0),
+        };
+        self.shared.cabinet_kind.store(kind, Ordering::Relaxed);
+        self.shared.cabinet_ir.store(ir, Ordering::Relaxed);
+        self.shared
+            .cabinet_pending
+            .store(want != running, Ordering::Relaxed);
     }
 
     /// A new heard slot starts a crossfade from the one heard before.
@@ -987,7 +1375,7 @@ impl Processor {
     }
 
     /// Hand the pots to the running models and set the glides' targets for the block.
-    fn set_targets(&mut self, controls: &Controls) -> Targets {
+    fn set_targets(&mut self, controls: &Controls) {
         let p = &controls.pots;
         for (g, v) in self.tone.iter_mut().zip([p.treble, p.middle, p.bass]) {
             g.set_target(v);
@@ -1008,9 +1396,10 @@ impl Processor {
         }
         self.trim.set_target(db_to_gain(controls.trim_db));
         self.level_match = controls.level_match;
-        Targets {
-            listen: if controls.listen_clamp { 1.0 } else { 0.0 },
-        }
+        self.listen.retarget(controls.listen, self.fade_len);
+        self.shared
+            .listen_point
+            .store(listen_index(controls.listen) as u32, Ordering::Relaxed);
     }
 
     fn read_frame(&self, channels: &[&mut [f32]], n: usize) -> [f32; 2] {
@@ -1025,25 +1414,19 @@ impl Processor {
         inputs
     }
 
-    /// One step of every glide; returns the listening point's crossfade weight (0 wiper, 1 clamp node).
-    fn step_glides(&mut self, targets: Targets) -> f64 {
+    /// One step of every glide and of the listening point's crossfade.
+    fn step_glides(&mut self) {
         self.calibration.step();
         self.trim.step();
         for g in self.tone.iter_mut() {
             g.step();
         }
-        if self.listen_mix != targets.listen {
-            self.listen_mix = if self.listen_mix < targets.listen {
-                (self.listen_mix + self.listen_step).min(targets.listen)
-            } else {
-                (self.listen_mix - self.listen_step).max(targets.listen)
-            };
-        }
-        fade_weight(self.listen_mix)
+        self.listen.advance(self.fade_len);
+        self.weights = self.listen.weights(self.fade_len);
     }
 
     /// One sample through every running slot (with the fade-in of rebuilt models), its loudness and match gain.
-    fn run_slots(&mut self, inputs: &[f32; 2], clamp_mix: f64, actions: &mut BlockActions) {
+    fn run_slots(&mut self, inputs: &[f32; 2], actions: &mut BlockActions) {
         let calibration = self.calibration.value();
         let mut new_window = false;
         for s in 0..SLOTS {
@@ -1057,16 +1440,18 @@ impl Processor {
                 0.0
             };
             for (c, &x) in inputs.iter().enumerate().take(self.channels) {
-                let (mut listen, mut clamp) = match slot.current.as_mut() {
-                    Some(m) => m.process(c, x, calibration, clamp_mix),
-                    None => (0.0, 0.0),
+                let mut p = match slot.current.as_mut() {
+                    Some(m) => m.process(c, x, calibration),
+                    None => Point::default(),
                 };
                 if let Some(next) = slot.next.as_mut() {
-                    let (l2, c2) = next.process(c, x, calibration, clamp_mix);
-                    listen += (l2 - listen) * w;
-                    clamp += (c2 - clamp) * w;
+                    let q = next.process(c, x, calibration);
+                    for (a, b) in p.points.iter_mut().zip(q.points) {
+                        *a += (b - *a) * w;
+                    }
+                    p.clamp_volts += (q.clamp_volts - p.clamp_volts) * w;
                 }
-                slot.out[c] = (listen, clamp);
+                slot.out[c] = p;
             }
             if slot.next.is_some() {
                 slot.fade += 1;
@@ -1080,7 +1465,11 @@ impl Processor {
                 }
             }
             if let Some(l) = slot.loudness.as_mut() {
-                new_window |= l.push(slot.out[0].0);
+                // The listening point before the cabinet (the cabinet is normalised to unit loudness in its
+                // band, and is the same for every position).
+                let p = slot.out[0].points;
+                let v = self.weights[0] * p[0] + self.weights[1] * p[1] + self.weights[2] * p[2];
+                new_window |= l.push(v);
             }
             slot.match_gain.step();
         }
@@ -1089,9 +1478,10 @@ impl Processor {
         }
     }
 
-    /// The heard slot's output (crossfaded from the previous one while the switch moves), level-matched and
-    /// trimmed, per channel; also feeds the editor's scope.
-    fn mix_heard(&mut self) -> [f64; 2] {
+    /// The heard slot's output (crossfaded from the previous one while the switch moves), level-matched, at
+    /// the listening point (the chain through the cabinet), trimmed, as `[left, right]` (a mono signal gives
+    /// both, equal unless a stereo response makes them differ); also feeds the editor's scope and spectrum.
+    fn mix_heard(&mut self, actions: &mut BlockActions) -> [f64; 2] {
         let w = if self.heard_fade < self.fade_len {
             self.heard_fade += 1;
             fade_weight(self.heard_fade as f64 / self.fade_len as f64)
@@ -1100,25 +1490,57 @@ impl Processor {
             1.0
         };
         let (a, b) = (&self.slots[self.heard], &self.slots[self.previous]);
+        // Per channel, the three listening points of the heard mix.
+        let mut points = [[0.0f64; 3]; 2];
+        for (c, pc) in points.iter_mut().enumerate().take(self.channels) {
+            for (k, v) in pc.iter_mut().enumerate() {
+                let ya = a.out[c].points[k] * a.match_gain.value();
+                *v = if self.previous == self.heard {
+                    ya
+                } else {
+                    let yb = b.out[c].points[k] * b.match_gain.value();
+                    yb + (ya - yb) * w
+                };
+            }
+        }
+        let scope = a.out[0].clamp_volts;
+        let mono = self.channels == 1;
+        if mono {
+            points[1] = points[0];
+        }
+        let weights = self.weights;
+        // The cabinet runs while the chain is heard (or fading in or out), and while a cabinet change fades.
+        let feed = weights[0] > 0.0;
+        let input = if feed {
+            [points[0][0], points[1][0]]
+        } else {
+            [0.0, 0.0]
+        };
+        // A cabinet left unfed keeps its tail: clear it (no allocation) before it is fed again.
+        if feed && !self.cabinet_fed {
+            self.cabinet.reset();
+        }
+        let (cabinet, finished) = if feed || self.cabinet.next.is_some() {
+            self.cabinet.process(input, mono, self.fade_len)
+        } else {
+            ([0.0, 0.0], false)
+        };
+        self.cabinet_fed = feed;
+        actions.service_worker |= finished;
         let trim = self.trim.value();
         let mut y = [0.0f64; 2];
-        for (c, yc) in y.iter_mut().enumerate().take(self.channels) {
-            let ya = a.out[c].0 * a.match_gain.value();
-            *yc = if self.previous == self.heard {
-                ya * trim
-            } else {
-                let yb = b.out[c].0 * b.match_gain.value();
-                (yb + (ya - yb) * w) * trim
-            };
+        for (c, yc) in y.iter_mut().enumerate() {
+            let p = &points[c];
+            *yc = weights[0] * cabinet[c] + weights[1] * p[1] + weights[2] * p[2];
         }
-        self.shared.scope.push(a.out[0].1 as f32);
-        self.shared.listen.push(a.out[0].0 as f32);
-        y
+        self.shared.scope.push(scope as f32);
+        self.shared.listen.push(y[0] as f32);
+        [y[0] * trim, y[1] * trim]
     }
 
     fn write_frame(&self, channels: &mut [&mut [f32]], n: usize, y: [f64; 2]) {
         for (c, ch) in channels.iter_mut().enumerate() {
-            let v = y[c.min(self.channels - 1)];
+            let v = y[c.min(1)];
             ch[n] = if v.is_finite() { v as f32 } else { 0.0 };
         }
     }

@@ -8,6 +8,8 @@
 //! and, if it is good, makes it the running circuit under a new circuit id. The audio thread reads only the
 //! atomics (`revision`, `key`): it never locks, parses or frees.
 
+use crate::ir::{check_ir_bytes, decode_base64, encode_base64, CheckedIr, MAX_IR_FILE_BYTES};
+use breakdown_dsp::cabinet::ImpulseResponse;
 use breakdown_dsp::circuit::MAX_POSITIONS;
 use breakdown_dsp::Circuit;
 use nice_plug::params::persist::PersistentField;
@@ -39,6 +41,13 @@ pub struct PersistedState {
     /// Name of the file the circuit was loaded from (shown in the editor only).
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub circuit_file: Option<String>,
+    /// The cabinet's impulse response: the WAV file's bytes in base64 (`ir::encode_base64`); None: none
+    /// loaded (the `loaded` cabinet choice plays the built-in response).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub ir: Option<String>,
+    /// Name of the file the response was loaded from (shown in the editor only).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub ir_file: Option<String>,
 }
 
 pub fn default_scope_ms() -> f32 {
@@ -52,6 +61,8 @@ impl Default for PersistedState {
             scope_ms: default_scope_ms(),
             circuit: None,
             circuit_file: None,
+            ir: None,
+            ir_file: None,
         }
     }
 }
@@ -113,6 +124,44 @@ pub struct CircuitView {
     pub has_tone_stack: bool,
 }
 
+/// The impulse response the `loaded` cabinet plays.
+#[derive(Clone, Debug, Default)]
+pub struct RunningIr {
+    /// Changes whenever the response does (0: none loaded).
+    pub id: u32,
+    pub response: Option<Arc<ImpulseResponse>>,
+    /// The persisted base64 text it came from.
+    text: Option<String>,
+    pub file: Option<String>,
+    /// "48 kHz, 0.250 s, mono".
+    pub summary: Option<String>,
+    /// Why the last response offered was refused (the running one stayed), or why the cabinet could not be
+    /// built at the session's rate.
+    pub problem: Option<String>,
+    seen_revision: u32,
+}
+
+/// What the editor shows of the loaded impulse response.
+#[derive(Clone, Debug, Default, PartialEq)]
+pub struct IrView {
+    pub id: u32,
+    pub file: Option<String>,
+    pub summary: Option<String>,
+    pub problem: Option<String>,
+}
+
+/// Decode and check a persisted response (base64 of a WAV file's bytes).
+fn decode_ir(text: &str, shown: &str) -> Result<CheckedIr, String> {
+    if text.len() > MAX_IR_FILE_BYTES.div_ceil(3) * 4 {
+        return Err(format!(
+            "'{shown}' holds more than {MAX_IR_FILE_BYTES} bytes, the most an impulse-response file may have"
+        ));
+    }
+    let bytes = decode_base64(text)
+        .ok_or_else(|| format!("'{shown}' is damaged in the saved state (not base64 text)"))?;
+    check_ir_bytes(&bytes, shown)
+}
+
 /// Which circuit the models should run, as the audio thread reads it: one atomic word.
 #[derive(Clone, Copy, Debug, PartialEq, Eq)]
 pub struct CircuitKey {
@@ -150,6 +199,9 @@ pub struct Session {
     revision: AtomicU32,
     running: Mutex<Running>,
     key: AtomicU64,
+    ir: Mutex<RunningIr>,
+    /// `RunningIr::id` for the audio thread.
+    ir_id: AtomicU32,
 }
 
 impl Default for Session {
@@ -172,6 +224,8 @@ impl Default for Session {
                 seen_revision: 0,
             }),
             key: AtomicU64::new(key.pack()),
+            ir: Mutex::new(RunningIr::default()),
+            ir_id: AtomicU32::new(0),
         }
     }
 }
@@ -185,6 +239,122 @@ impl Session {
     /// The running circuit's id and position count (audio-thread safe).
     pub fn key(&self) -> CircuitKey {
         CircuitKey::unpack(self.key.load(Ordering::Acquire))
+    }
+
+    /// Id of the running impulse response, 0 for none (audio-thread safe).
+    pub fn ir_id(&self) -> u32 {
+        self.ir_id.load(Ordering::Acquire)
+    }
+
+    fn lock_ir(&self) -> MutexGuard<'_, RunningIr> {
+        self.ir.lock().unwrap_or_else(|e| e.into_inner())
+    }
+
+    /// The running impulse response and its id (not on the audio thread: locks).
+    pub fn ir(&self) -> (u32, Option<Arc<ImpulseResponse>>) {
+        let r = self.lock_ir();
+        (r.id, r.response.clone())
+    }
+
+    /// What the editor shows of the running impulse response.
+    pub fn ir_view(&self) -> IrView {
+        let r = self.lock_ir();
+        IrView {
+            id: r.id,
+            file: r.file.clone(),
+            summary: r.summary.clone(),
+            problem: r.problem.clone(),
+        }
+    }
+
+    /// Record why the cabinet of response `id` could not be built (the worker; the running cabinet stays).
+    pub fn set_ir_problem(&self, id: u32, problem: String) {
+        let mut r = self.lock_ir();
+        if r.id == id {
+            r.problem = Some(problem);
+        }
+    }
+
+    /// Load an impulse-response file's bytes (the editor's "Load IR..."): checked first (`check_ir_bytes`);
+    /// a good one goes into the persisted field and becomes the running response, a bad one changes nothing
+    /// and comes back as the message. Returns the response's summary.
+    pub fn load_ir(&self, bytes: &[u8], file: String) -> Result<String, String> {
+        let checked = check_ir_bytes(bytes, &file)?;
+        let text = encode_base64(bytes);
+        let summary = checked.summary.clone();
+        let mut r = self.lock_ir();
+        self.write(|p| {
+            p.ir = Some(text.clone());
+            p.ir_file = Some(file.clone());
+        });
+        r.seen_revision = self.revision();
+        r.id = r.id.wrapping_add(1).max(1);
+        r.response = Some(Arc::new(checked.response));
+        r.text = Some(text);
+        r.file = Some(file);
+        r.summary = Some(checked.summary);
+        r.problem = None;
+        self.ir_id.store(r.id, Ordering::Release);
+        Ok(summary)
+    }
+
+    /// Forget the loaded impulse response (the `loaded` choice then plays the built-in one).
+    pub fn clear_ir(&self) {
+        self.write(|p| {
+            p.ir = None;
+            p.ir_file = None;
+        });
+        self.refresh();
+    }
+
+    /// Bring the running response up to date with the persisted field, as `refresh` does the circuit: a
+    /// response that is refused keeps the running one, records why, and goes back out of the persisted field.
+    fn refresh_ir(&self, revision: u32) {
+        let mut r = self.lock_ir();
+        if r.seen_revision == revision {
+            return;
+        }
+        r.seen_revision = revision;
+        let (text, file) = {
+            let p = self.persisted.read().unwrap_or_else(|e| e.into_inner());
+            (p.ir.clone(), p.ir_file.clone())
+        };
+        if text == r.text {
+            r.file = file;
+            return;
+        }
+        let shown = file
+            .clone()
+            .unwrap_or_else(|| "the saved impulse response".into());
+        let checked = match &text {
+            None => Ok(None),
+            Some(t) => decode_ir(t, &shown).map(Some),
+        };
+        match checked {
+            Ok(c) => {
+                r.id = if c.is_some() {
+                    r.id.wrapping_add(1).max(1)
+                } else {
+                    0
+                };
+                r.summary = c.as_ref().map(|c| c.summary.clone());
+                r.response = c.map(|c| Arc::new(c.response));
+                r.text = text;
+                r.file = file;
+                r.problem = None;
+                self.ir_id.store(r.id, Ordering::Release);
+            }
+            Err(e) => {
+                nice_plug::nice_warn!(
+                    "Breakdown: the impulse response in the session is refused ({e}); keeping {}",
+                    r.file.as_deref().unwrap_or("the running cabinet")
+                );
+                r.problem = Some(e);
+                let mut p = self.persisted.write().unwrap_or_else(|e| e.into_inner());
+                p.ir = r.text.clone();
+                p.ir_file = r.file.clone();
+            }
+        }
     }
 
     fn lock(&self) -> MutexGuard<'_, Running> {
@@ -266,6 +436,7 @@ impl Session {
     /// save never stores a circuit the plugin did not run.
     pub fn refresh(&self) -> bool {
         let revision = self.revision();
+        self.refresh_ir(revision);
         let mut r = self.lock();
         if r.seen_revision == revision {
             return false;

@@ -89,7 +89,8 @@ pub struct SlotReadout {
 pub struct Shared {
     /// Clamp-node volts of the heard position (host rate).
     pub scope: Ring,
-    /// Listening-point signal of the heard position (full-scale units, host rate).
+    /// What is heard at the listening point (after the cabinet at the chain; before the output trim), one
+    /// channel (full-scale units, host rate).
     pub listen: Ring,
     pub slots: [SlotReadout; SLOTS],
     /// The runtime slot heard (a position index, or `session::CANDIDATE`).
@@ -101,6 +102,13 @@ pub struct Shared {
     pub models: AtomicUsize,
     /// Count of meter windows published (the editor repaints when it changes).
     pub publications: AtomicU32,
+    /// The listening point heard (`runtime::listen_index`: 0 chain, 1 wiper, 2 clamp node).
+    pub listen_point: AtomicU32,
+    /// The cabinet playing (or fading in): 0 none, 1 built-in, 2 the loaded response `cabinet_ir`.
+    pub cabinet_kind: AtomicU32,
+    pub cabinet_ir: AtomicU32,
+    /// A cabinet other than the one playing is asked for and being prepared.
+    pub cabinet_pending: AtomicBool,
 }
 
 impl Default for Shared {
@@ -115,6 +123,10 @@ impl Default for Shared {
             latency: AtomicU32::new(0),
             models: AtomicUsize::new(1),
             publications: AtomicU32::new(0),
+            listen_point: AtomicU32::new(0),
+            cabinet_kind: AtomicU32::new(1),
+            cabinet_ir: AtomicU32::new(0),
+            cabinet_pending: AtomicBool::new(false),
         }
     }
 }

@@ -230,3 +230,31 @@ fn single_values_are_clamped_or_replaced_with_a_note() {
         );
     }
 }
+
+/// States saved before the listening chain existed hold `listen = "wiper"` and no `cabinet`: they load with
+/// the wiper (now the bare wiper, as they meant) and the default cabinet, without notes; a state that leaves
+/// `listen` out gets the new default, the chain.
+#[test]
+fn a_state_from_before_the_chain_keeps_the_wiper() {
+    let mut s = state_with(Some(&current()));
+    s.params
+        .insert("listen".into(), ParamValue::String("wiper".into()));
+    s.params.remove("cabinet");
+    let repair = repair_state(&mut s);
+    assert!(repair.notes.is_empty(), "{:?}", repair.notes);
+    assert!(same_value(
+        &s.params["listen"],
+        &ParamValue::String("wiper".into())
+    ));
+    assert!(same_value(
+        &s.params["cabinet"],
+        &ParamValue::String("builtin".into())
+    ));
+    let mut s = state_with(Some(&current()));
+    s.params.remove("listen");
+    repair_state(&mut s);
+    assert!(same_value(
+        &s.params["listen"],
+        &ParamValue::String("chain".into())
+    ));
+}

@@ -27,7 +27,7 @@ fn assert_valid(state: &PluginState) {
     }
 }
 
-const IDS: [&str; 24] = [
+const IDS: [&str; 25] = [
     "gain",
     "level",
     "treble",
@@ -44,6 +44,7 @@ const IDS: [&str; 24] = [
     "trim",
     "quality",
     "listen",
+    "cabinet",
     "level_match",
     "run_all",
     // version 1 ids and one of nobody's
@@ -74,6 +75,8 @@ fn value() -> impl Strategy<Value = ParamValue> {
             Just("candidate".to_string()),
             Just("1n52xxb".to_string()),
             Just("clamp".to_string()),
+            Just("chain".to_string()),
+            Just("none".to_string()),
             ".{0,12}",
         ]
         .prop_map(ParamValue::String),

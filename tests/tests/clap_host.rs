@@ -36,7 +36,8 @@ use clap_sys::process::{clap_process, CLAP_PROCESS_ERROR};
 use clap_sys::stream::{clap_istream, clap_ostream};
 use clap_sys::version::CLAP_VERSION;
 use plugin_host::{
-    c_text, di_signal, ensure_bundles, max_diff, peak, reference_render, PluginSettings,
+    c_text, di_signal, ensure_bundles, max_diff, peak, reference_chain_render, reference_render,
+    PluginSettings,
 };
 use std::ffi::{c_char, c_void, CStr, CString};
 use std::ptr;
@@ -616,7 +617,8 @@ impl Drop for Instance {
     }
 }
 
-/// Settings for an exact comparison: one position heard, level match off, A/B off, wiper, no trim.
+/// Settings for an exact comparison: one position heard, level match off, A/B off, the listening chain without
+/// its cabinet (the model's listening output), no trim.
 fn exact_settings(inst: &Instance, s: &PluginSettings) {
     let switch = format!("{}", s.position);
     let quality = match s.quality {
@@ -635,7 +637,8 @@ fn exact_settings(inst: &Instance, s: &PluginSettings) {
         ("Switch position", &switch),
         ("A/B: hear compare-with", "Off"),
         ("Level match", "Off"),
-        ("Listening point", "Wiper"),
+        ("Listening point", "Tone stack + cabinet"),
+        ("Cabinet", "None"),
         ("Output trim", "0"),
         ("Quality", quality),
     ];
@@ -880,6 +883,7 @@ fn automating_every_parameter_keeps_the_output_finite() {
         "Output trim",
         "Quality",
         "Listening point",
+        "Cabinet",
         "Level match",
         "Run all positions",
     ] {
@@ -1008,13 +1012,14 @@ fn saved_state_reloads_into_a_fresh_instance_with_identical_output() {
 }
 
 /// Damaged states (truncated, random bytes, a wrong length, a newer version of our own field) never crash; the
-/// instance keeps processing; a state whose `breakdown` field is from a newer version loads as the defaults.
+/// instance keeps processing; a state whose `breakdown` field is from a newer version loads as the defaults
+/// (the default listening chain: the model's listening output through the built-in cabinet).
 #[test]
 fn damaged_state_loads_defaults_and_keeps_processing() {
     let rate = 48_000.0;
     let defaults = PluginSettings::default();
     let input = di_signal(rate, 0.15, 0.7);
-    let (reference, model_latency) = reference_render(rate, defaults, &input);
+    let (reference, model_latency) = reference_chain_render(rate, defaults, &input);
 
     let changed = Instance::new();
     changed.flush(&[
@@ -1548,4 +1553,149 @@ fn soak_random_automation_rates_blocks_states_and_hostile_input() {
         "only {audio_seconds} s of audio"
     );
     assert!(state_loads > 0, "the soak loaded no state");
+}
+
+/// Base64 (RFC 4648 section 4, padded), written here independently of the plugin's own encoder.
+fn base64(bytes: &[u8]) -> String {
+    const A: &[u8] = b"ABCDEFGHIJKLMNOPQRSTUVWXYZabcdefghijklmnopqrstuvwxyz0123456789+/";
+    let mut out = String::new();
+    for c in bytes.chunks(3) {
+        let n = (c[0] as u32) << 16
+            | (*c.get(1).unwrap_or(&0) as u32) << 8
+            | *c.get(2).unwrap_or(&0) as u32;
+        for k in 0..4 {
+            out.push(if k <= c.len() {
+                A[(n >> (18 - 6 * k) & 63) as usize] as char
+            } else {
+                '='
+            });
+        }
+    }
+    out
+}
+
+/// A mono 32-bit float WAV file in memory (hound).
+fn wav_bytes(rate: u32, samples: &[f32]) -> Vec<u8> {
+    let spec = hound::WavSpec {
+        channels: 1,
+        sample_rate: rate,
+        bits_per_sample: 32,
+        sample_format: hound::SampleFormat::Float,
+    };
+    let mut cursor = std::io::Cursor::new(Vec::new());
+    {
+        let mut w = hound::WavWriter::new(&mut cursor, spec).expect("a WAV writer");
+        for s in samples {
+            w.write_sample(*s).unwrap();
+        }
+        w.finalize().unwrap();
+    }
+    cursor.into_inner()
+}
+
+/// An invented cabinet-like response: a unit first tap and a decaying 2.2 kHz ring, 80 ms at `rate`.
+fn invented_ir(rate: u32) -> Vec<f32> {
+    (0..rate as usize * 8 / 100)
+        .map(|k| {
+            let t = k as f64 / rate as f64;
+            let ring = 0.6 * (-t / 0.005).exp() * (2.0 * std::f64::consts::PI * 2200.0 * t).sin();
+            (if k == 0 { 1.0 } else { 0.0 } + ring) as f32
+        })
+        .collect()
+}
+
+/// The cabinet's impulse response travels in the state: a WAV file of our own put in the `breakdown` field
+/// (as base64 of its bytes) plays as the `Loaded IR` cabinet, equal to the model's listening output through
+/// `Cabinet::new` of the same file (decoded by the dsp crate's reader) run separately; the instance saves it, a
+/// fresh instance reloads it and plays identically. A state with a bad response (a NaN sample) then keeps the
+/// running cabinet, plays as before, and logs why.
+#[test]
+fn an_ir_in_the_state_plays_as_the_cabinet_and_survives_save_and_reload() {
+    use breakdown_dsp::cabinet::{Cabinet, ImpulseResponse};
+    let rate = 48_000.0;
+    let s = PluginSettings::default();
+    let bytes = wav_bytes(44_100, &invented_ir(44_100));
+    let wav = breakdown_dsp::wav::parse(&bytes, "invented-room.wav", &Default::default()).unwrap();
+    let ir = ImpulseResponse {
+        channels: wav.audio.channels,
+        sample_rate: wav.audio.rate as f64,
+    };
+    let input = di_signal(rate, 0.2, 0.7);
+    let cabinet = Cabinet::new(&ir, rate, 1).expect("our response makes a cabinet");
+    let (reference, model_latency) =
+        plugin_host::reference_chain_render_with(rate, s, &input, cabinet);
+    let (builtin, _) = reference_chain_render(rate, s, &input);
+    assert!(
+        max_diff(&builtin, &reference).0 > 1e-3,
+        "the loaded response plays like the built-in one"
+    );
+
+    let template = Instance::new();
+    exact_settings(&template, &s);
+    template.flush(&[
+        ("Listening point", "Tone stack + cabinet"),
+        ("Cabinet", "Loaded IR"),
+    ]);
+    let field = |ir: &str| {
+        serde_json::json!({
+            "version": 2,
+            "scope_ms": 20.0,
+            "ir": ir,
+            "ir_file": "invented-room.wav",
+        })
+    };
+    let session = state_with_field(&template.save(), field(&base64(&bytes)));
+    let render = |inst: &mut Instance| {
+        inst.activate(rate, 256);
+        let latency = inst.latency() as usize;
+        let mut padded = input.clone();
+        padded.resize(input.len() + latency, 0.0);
+        let out = inst.run(&[padded.clone(), padded], 2, 256);
+        inst.deactivate();
+        (out, latency)
+    };
+    let mut a = Instance::new();
+    assert!(a.load(&session), "the plugin refused a state with our IR");
+    let (out_a, latency) = render(&mut a);
+    for (c, ch) in out_a.iter().enumerate() {
+        check_against_model(
+            &format!("IR from the state, channel {c}"),
+            ch,
+            &reference,
+            latency,
+            model_latency,
+        );
+    }
+    let saved = a.save();
+    let json: serde_json::Value = serde_json::from_slice(&saved[8..]).unwrap();
+    let saved_field: serde_json::Value =
+        serde_json::from_str(json["fields"]["breakdown"].as_str().expect("our field")).unwrap();
+    assert_eq!(saved_field["ir"].as_str(), Some(base64(&bytes).as_str()));
+    let mut b = Instance::new();
+    assert!(b.load(&saved), "a fresh instance refused the saved state");
+    let (out_b, _) = render(&mut b);
+    assert!(out_a == out_b, "output after reloading the state differs");
+
+    // A bad response in a state: the running cabinet stays.
+    let mut nan = invented_ir(44_100);
+    nan[100] = f32::NAN;
+    let bad = state_with_field(&template.save(), field(&base64(&wav_bytes(44_100, &nan))));
+    assert!(a.load(&bad));
+    let (out_c, _) = render(&mut a);
+    assert!(
+        out_a == out_c,
+        "a refused response changed what the cabinet plays"
+    );
+    let kept: serde_json::Value = serde_json::from_slice(&a.save()[8..]).unwrap();
+    let kept: serde_json::Value =
+        serde_json::from_str(kept["fields"]["breakdown"].as_str().unwrap()).unwrap();
+    assert_eq!(
+        kept["ir"].as_str(),
+        Some(base64(&bytes).as_str()),
+        "the saved state carries the response that plays, not the refused one"
+    );
+    match plugin_log_contains("impulse response in the session is refused") {
+        Some(found) => assert!(found, "no logged reason for the refused response"),
+        None => eprintln!("NICE_LOG set by the caller: the logged reason is not checked"),
+    }
 }

@@ -249,7 +249,13 @@ fn pedalboard_renders_the_vst3_like_the_model() {
 
     // (rate, host block size, settings, extra host parameter assignments)
     let cases: [(u32, usize, PluginSettings, &[&str]); 3] = [
-        (96_000, 512, PluginSettings::default(), &[]),
+        // The listening chain without its cabinet is the model's listening output.
+        (
+            96_000,
+            512,
+            PluginSettings::default(),
+            &["--set", "cabinet=None"],
+        ),
         (
             44_100,
             64,
@@ -259,7 +265,14 @@ fn pedalboard_renders_the_vst3_like_the_model() {
                 ..PluginSettings::default()
             },
             // position 2 of the integer range 0..12: normalised 2/12
-            &["--raw", "switch_position=0.16666667", "--raw", "gain=0.6"],
+            &[
+                "--raw",
+                "switch_position=0.16666667",
+                "--raw",
+                "gain=0.6",
+                "--set",
+                "cabinet=None",
+            ],
         ),
         (
             48_000,
@@ -268,7 +281,7 @@ fn pedalboard_renders_the_vst3_like_the_model() {
                 quality: Quality::X2,
                 ..PluginSettings::default()
             },
-            &["--set", "quality=2x"],
+            &["--set", "quality=2x", "--set", "cabinet=None"],
         ),
     ];
     for (k, (rate, block, settings, sets)) in cases.iter().enumerate() {

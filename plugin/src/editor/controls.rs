@@ -1,9 +1,10 @@
 //! The controls column: the switch (heard position, A/B, compare-with, each position's loudness and match),
-//! the pots, the candidate pair, and input calibration, trim, quality and listening point.
+//! the pots, the candidate pair, and input calibration, trim and quality (the listening point is in the
+//! listening chain panel).
 
 use super::widgets::{choice_buttons, dim, heading, panel, set, toggle, ACCENT, TEXT_DIM, WARN};
 use crate::params::{
-    model_vz, safe_float, safe_int, BreakdownParams, FamilyChoice, ListenPoint, QualityChoice,
+    model_vz, safe_float, safe_int, BreakdownParams, FamilyChoice, QualityChoice,
     VOLTS_AT_FULL_SCALE_HELP,
 };
 use crate::session::{CircuitView, CANDIDATE};
@@ -242,18 +243,6 @@ pub fn input_output(
             let refs: Vec<(QualityChoice, &str)> =
                 choices.iter().map(|(q, s)| (*q, s.as_str())).collect();
             choice_buttons(ui, setter, &p.quality, &refs);
-        });
-        ui.horizontal(|ui| {
-            ui.label("Listen at");
-            choice_buttons(
-                ui,
-                setter,
-                &p.listen,
-                &[
-                    (ListenPoint::Wiper, "level pot wiper"),
-                    (ListenPoint::ClampNode, "clamp node"),
-                ],
-            );
         });
         let latency = shared.latency.load(Ordering::Relaxed);
         let rate = shared.sample_rate.load(Ordering::Relaxed);

@@ -1,9 +1,11 @@
-//! The editor, one file per part: the circuit panel, the controls, a triggered scope of the clamp node, the
+//! The editor, one file per part: the circuit panel, the listening chain (listening point, cabinet, IR loader),
+//! the controls, a triggered scope of the clamp node, the
 //! spectrum of the listening point, the ratings of the heard parts, and the about / safety panel with the whole
 //! caution. It reads the audio thread's data through `Shared` (atomics only) and the running circuit through
 //! the `Session`.
 
 mod about;
+mod cabinet_panel;
 mod circuit_panel;
 mod controls;
 mod ratings;
@@ -19,6 +21,7 @@ use crate::presets::{Preset, DEMO_PRESETS};
 use crate::session::CircuitView;
 use crate::shared::Shared;
 use crate::state::default_param_values;
+use cabinet_panel::CabinetPanel;
 use circuit_panel::CircuitPanel;
 use egui::FontId;
 use nice_plug::plugin::ParamValue;
@@ -68,6 +71,7 @@ fn apply_preset(setter: &ParamSetter, params: &BreakdownParams, preset: &Preset)
         match (id.as_str(), v) {
             ("quality", ParamValue::String(c)) => set_choice(setter, &params.quality, c),
             ("listen", ParamValue::String(c)) => set_choice(setter, &params.listen, c),
+            ("cabinet", ParamValue::String(c)) => set_choice(setter, &params.cabinet, c),
             ("candidate_family", ParamValue::String(c)) => {
                 set_choice(setter, &params.candidate_family, c)
             }
@@ -91,6 +95,7 @@ pub struct App {
     spectrum: Spectrum,
     last_publication: u32,
     circuit_panel: CircuitPanel,
+    cabinet_panel: CabinetPanel,
     view: CircuitView,
     view_revision: u32,
     show_about: bool,
@@ -110,6 +115,7 @@ impl App {
             spectrum: Spectrum::default(),
             last_publication: u32::MAX,
             circuit_panel: CircuitPanel::default(),
+            cabinet_panel: CabinetPanel::default(),
             view,
             view_revision: u32::MAX,
             show_about: false,
@@ -233,6 +239,9 @@ impl NiceEguiApp for App {
                     .show(ui, |ui| {
                         self.circuit_panel
                             .draw(ui, &self.params.session, &self.view);
+                        ui.add_space(6.0);
+                        self.cabinet_panel
+                            .draw(ui, &setter, &self.params, &self.shared);
                         ui.add_space(6.0);
                         controls::switch(ui, &setter, &self.params, &self.shared, &self.view);
                     });

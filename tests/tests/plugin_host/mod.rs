@@ -4,6 +4,7 @@
 
 #![allow(dead_code)]
 
+use breakdown_dsp::cabinet::Cabinet;
 use breakdown_dsp::{Circuit, Engine, Probe, Quality, Settings};
 use std::path::{Path, PathBuf};
 use std::process::Command;
@@ -236,6 +237,42 @@ pub fn reference_render_on(
     let mut engine = Engine::new(&circuit, rate, s.quality, settings).expect("the circuit builds");
     let latency = engine.latency();
     (engine.render(input, Probe::Listen), latency)
+}
+
+/// What the plugin's default listening chain gives for `input` on the built-in circuit: the model's listening
+/// output (the tone stack's output), sample by sample from rest with its latency, through the dsp crate's
+/// built-in cabinet (`Cabinet::builtin`, run here on its own), then the latency removed; and the latency.
+pub fn reference_chain_render(rate: f64, s: PluginSettings, input: &[f32]) -> (Vec<f32>, usize) {
+    let cabinet = Cabinet::builtin(rate, 1).expect("the built-in cabinet builds");
+    reference_chain_render_with(rate, s, input, cabinet)
+}
+
+/// `reference_chain_render` through `cabinet` (mono signal) instead of the built-in one.
+pub fn reference_chain_render_with(
+    rate: f64,
+    s: PluginSettings,
+    input: &[f32],
+    mut cabinet: Cabinet,
+) -> (Vec<f32>, usize) {
+    let mut circuit = Circuit::builtin();
+    circuit.input.volts_at_full_scale = s.volts_at_full_scale;
+    let settings = Settings {
+        gain: s.gain as f64,
+        level: s.level as f64,
+        position: s.position,
+        ..Default::default()
+    };
+    let mut engine = Engine::new(&circuit, rate, s.quality, settings).expect("the circuit builds");
+    let latency = engine.latency();
+    let mut out = Vec::with_capacity(input.len());
+    for n in 0..input.len() + latency {
+        let x = input.get(n).copied().unwrap_or(0.0);
+        let y = cabinet.process_mono(engine.process_sample(x).listen)[0];
+        if n >= latency {
+            out.push(y as f32);
+        }
+    }
+    (out, latency)
 }
 
 /// Largest |a - b| and where.
