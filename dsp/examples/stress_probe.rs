@@ -40,7 +40,7 @@ fn main() {
     let input: Vec<f32> = (0..n)
         .map(|i| match signal.as_str() {
             "square" => {
-                if (i / (rate / 400.0) as usize) % 2 == 0 {
+                if (i / (rate / 400.0) as usize).is_multiple_of(2) {
                     1.0
                 } else {
                     -1.0

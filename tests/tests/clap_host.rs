@@ -1419,7 +1419,7 @@ fn soak_at_22_and_44_khz_random_automation_blocks_states_and_hostile_input() {
     let t = soak_total_seconds() / 600.0;
     soak(
         &[(22_050.0, 200.0 * t), (44_100.0, 140.0 * t)],
-        0x5eed_0f_b4ea_cd0e ^ 0x1234_5678,
+        0x005e_ed0f_b4ea_cd0e ^ 0x1234_5678,
     );
 }
 
@@ -1505,7 +1505,7 @@ fn soak(rates: &[(f64, f64)], seed: u64) {
                             SoakSignal::Silence => 0.0,
                             SoakSignal::Dc => dc,
                             SoakSignal::Square => {
-                                if (n / (square_period / 2).max(1)) % 2 == 0 {
+                                if (n / (square_period / 2).max(1)).is_multiple_of(2) {
                                     1.0
                                 } else {
                                     -1.0
