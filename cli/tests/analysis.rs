@@ -60,6 +60,21 @@ fn parts_writes_text_and_csv_with_cautions() {
     assert!(out.contains("1N4746A") && out.contains("1N4734A"), "{out}");
     assert!(out.contains("drain and verify capacitors"));
     assert!(dir.join("parts.csv").exists() && dir.join("parts.txt").exists());
+    // One line per valve, each inside its type's ratings at idle (12AX7: 330 V plate, 1.2 W per section, from
+    // memory of the common datasheets; a built-in preamp stage idles near 1 mA at under 200 V, ~0.2 W).
+    let valves: Vec<&str> = out.lines().filter(|l| l.starts_with("* valve, ")).collect();
+    assert!(valves.len() >= 2, "{out}");
+    assert!(
+        out.contains("* valve, stage 1 ") && out.contains("* valve, cathode follower "),
+        "{out}"
+    );
+    assert!(valves.iter().all(|l| l.contains("12AX7")), "{out}");
+    let verdicts: Vec<&str> = out
+        .lines()
+        .filter(|l| l.contains("per section (from memory of the datasheet)"))
+        .collect();
+    assert_eq!(verdicts.len(), valves.len(), "{out}");
+    assert!(verdicts.iter().all(|l| l.ends_with(" ok")), "{out}");
     let _ = std::fs::remove_dir_all(&dir);
 }
 
