@@ -171,3 +171,44 @@ fn bad_inputs_get_one_clear_error() {
         assert_eq!(err.trim().lines().count(), 1, "{args:?}: {err}");
     }
 }
+
+#[test]
+fn parts_flags_a_follower_over_its_dissipation() {
+    // The one-stage circuit with B+ 400 V and a 1 k follower cathode resistor. Hand calculation: with the
+    // follower's cathode at Vk its current is Vk / 1 k and its plate-to-cathode voltage 400 - Vk, so it
+    // dissipates (400 - Vk) Vk / 1 k, above the 12AX7's 1.2 W per section (from memory of the datasheet) for
+    // every Vk between 3.0 V and 397 V (roots of Vk^2 - 400 Vk + 1200 = 0): any working bias is over.
+    let dir = temp_dir("parts-hot-follower");
+    std::fs::create_dir_all(&dir).unwrap();
+    let src = std::fs::read_to_string(concat!(
+        env!("CARGO_MANIFEST_DIR"),
+        "/../presets-demo/one-stage.toml"
+    ))
+    .unwrap()
+    .replace("supply_volts = 300.0", "supply_volts = 400.0")
+    .replace("cathode_resistor = 100e3", "cathode_resistor = 1e3");
+    let file = dir.join("hot.toml");
+    std::fs::write(&file, src).unwrap();
+    let out_dir = dir.join("out");
+    let (ok, out, err) = breakdown(&[
+        "parts",
+        "--circuit",
+        file.to_str().unwrap(),
+        "--output",
+        out_dir.to_str().unwrap(),
+    ]);
+    assert!(ok, "{err}");
+    let follower = out
+        .lines()
+        .skip_while(|l| !l.starts_with("* valve, cathode follower "))
+        .take(3)
+        .collect::<Vec<_>>()
+        .join("\n");
+    assert!(
+        follower.contains("dissipation")
+            && follower.contains("dissipation 0.")
+            && follower.contains("x over the rating"),
+        "{out}"
+    );
+    let _ = std::fs::remove_dir_all(&dir);
+}
