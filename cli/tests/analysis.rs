@@ -62,6 +62,19 @@ fn parts_writes_text_and_csv_with_cautions() {
     assert!(dir.join("parts.csv").exists() && dir.join("parts.txt").exists());
     // One line per valve, each inside its type's ratings at idle (12AX7: 330 V plate, 1.2 W per section, from
     // memory of the common datasheets; a built-in preamp stage idles near 1 mA at under 200 V, ~0.2 W).
+    // The built-in preamp's stage parts by their circuit-file keys (values as in presets-demo/builtin-preamp.toml).
+    assert!(
+        out.contains("* stage 1 plate_resistor [all]: 100 kohm"),
+        "{out}"
+    );
+    assert!(
+        out.contains("* stage 1 volume.bright_cap [all]: 470 pF"),
+        "{out}"
+    );
+    assert!(
+        out.contains("* stage 2 divider.series [all]: 470 kohm"),
+        "{out}"
+    );
     let valves: Vec<&str> = out.lines().filter(|l| l.starts_with("* valve, ")).collect();
     assert!(valves.len() >= 2, "{out}");
     assert!(

@@ -148,6 +148,54 @@ pub fn parts_list(
         worst_case: "-".into(),
         minimum_rating: "-".into(),
     });
+    // Each preamp stage's parts, by their circuit-file keys, in signal order from the jack.
+    for (k, st) in rig.circuit.preamp.iter().enumerate() {
+        use breakdown_dsp::circuit::Network;
+        use breakdown_dsp::units::si;
+        let mut parts: Vec<(String, String)> = vec![
+            ("grid_stopper".into(), si(st.grid_stopper, "ohm")),
+            ("plate_resistor".into(), si(st.plate_resistor, "ohm")),
+            ("cathode_resistor".into(), si(st.cathode_resistor, "ohm")),
+        ];
+        if st.cathode_bypass > 0.0 {
+            parts.push(("cathode_bypass".into(), si(st.cathode_bypass, "F")));
+        }
+        parts.push(("coupling_cap".into(), si(st.coupling_cap, "F")));
+        match &st.network {
+            Network::GridLeak(r) => parts.push(("grid_leak".into(), si(*r, "ohm"))),
+            Network::Volume(v) => {
+                parts.push((
+                    "volume.resistance".into(),
+                    format!(
+                        "{} {}",
+                        si(v.resistance, "ohm"),
+                        format!("{:?}", v.law).to_lowercase()
+                    ),
+                ));
+                if v.bright_cap > 0.0 {
+                    parts.push(("volume.bright_cap".into(), si(v.bright_cap, "F")));
+                }
+            }
+            Network::Divider(d) => {
+                parts.push(("divider.series".into(), si(d.series, "ohm")));
+                if d.series_cap > 0.0 {
+                    parts.push(("divider.series_cap".into(), si(d.series_cap, "F")));
+                }
+                parts.push(("divider.shunt".into(), si(d.shunt, "ohm")));
+            }
+        }
+        for (key, value) in parts {
+            lines.push(Line {
+                item: format!("stage {} {key}", k + 1),
+                position: "all".into(),
+                value,
+                part_number: "-".into(),
+                orientation: "-".into(),
+                worst_case: "-".into(),
+                minimum_rating: "-".into(),
+            });
+        }
+    }
     if let Some(idle) = idle {
         let circ = &rig.circuit;
         let mut tubes: Vec<(String, breakdown_dsp::devices::TubeType)> = circ
