@@ -60,6 +60,34 @@ fn parts_writes_text_and_csv_with_cautions() {
     assert!(out.contains("1N4746A") && out.contains("1N4734A"), "{out}");
     assert!(out.contains("drain and verify capacitors"));
     assert!(dir.join("parts.csv").exists() && dir.join("parts.txt").exists());
+    // One line per valve, each inside its type's ratings at idle (12AX7: 330 V plate, 1.2 W per section, from
+    // memory of the common datasheets; a built-in preamp stage idles near 1 mA at under 200 V, ~0.2 W).
+    // The built-in preamp's stage parts by their circuit-file keys (values as in presets-demo/builtin-preamp.toml).
+    assert!(
+        out.contains("* stage 1 plate_resistor [all]: 100 kohm"),
+        "{out}"
+    );
+    assert!(
+        out.contains("* stage 1 volume.bright_cap [all]: 470 pF"),
+        "{out}"
+    );
+    assert!(
+        out.contains("* stage 2 divider.series [all]: 470 kohm"),
+        "{out}"
+    );
+    let valves: Vec<&str> = out.lines().filter(|l| l.starts_with("* valve, ")).collect();
+    assert!(valves.len() >= 2, "{out}");
+    assert!(
+        out.contains("* valve, stage 1 ") && out.contains("* valve, cathode follower "),
+        "{out}"
+    );
+    assert!(valves.iter().all(|l| l.contains("12AX7")), "{out}");
+    let verdicts: Vec<&str> = out
+        .lines()
+        .filter(|l| l.contains("per section (from memory of the datasheet)"))
+        .collect();
+    assert_eq!(verdicts.len(), valves.len(), "{out}");
+    assert!(verdicts.iter().all(|l| l.ends_with(" ok")), "{out}");
     let _ = std::fs::remove_dir_all(&dir);
 }
 
@@ -155,4 +183,45 @@ fn bad_inputs_get_one_clear_error() {
         assert!(!err.contains("panicked"), "{args:?}: {err}");
         assert_eq!(err.trim().lines().count(), 1, "{args:?}: {err}");
     }
+}
+
+#[test]
+fn parts_flags_a_follower_over_its_dissipation() {
+    // The one-stage circuit with B+ 400 V and a 1 k follower cathode resistor. Hand calculation: with the
+    // follower's cathode at Vk its current is Vk / 1 k and its plate-to-cathode voltage 400 - Vk, so it
+    // dissipates (400 - Vk) Vk / 1 k, above the 12AX7's 1.2 W per section (from memory of the datasheet) for
+    // every Vk between 3.0 V and 397 V (roots of Vk^2 - 400 Vk + 1200 = 0): any working bias is over.
+    let dir = temp_dir("parts-hot-follower");
+    std::fs::create_dir_all(&dir).unwrap();
+    let src = std::fs::read_to_string(concat!(
+        env!("CARGO_MANIFEST_DIR"),
+        "/../presets-demo/one-stage.toml"
+    ))
+    .unwrap()
+    .replace("supply_volts = 300.0", "supply_volts = 400.0")
+    .replace("cathode_resistor = 100e3", "cathode_resistor = 1e3");
+    let file = dir.join("hot.toml");
+    std::fs::write(&file, src).unwrap();
+    let out_dir = dir.join("out");
+    let (ok, out, err) = breakdown(&[
+        "parts",
+        "--circuit",
+        file.to_str().unwrap(),
+        "--output",
+        out_dir.to_str().unwrap(),
+    ]);
+    assert!(ok, "{err}");
+    let follower = out
+        .lines()
+        .skip_while(|l| !l.starts_with("* valve, cathode follower "))
+        .take(3)
+        .collect::<Vec<_>>()
+        .join("\n");
+    assert!(
+        follower.contains("dissipation")
+            && follower.contains("dissipation 0.")
+            && follower.contains("x over the rating"),
+        "{out}"
+    );
+    let _ = std::fs::remove_dir_all(&dir);
 }

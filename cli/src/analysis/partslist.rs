@@ -2,7 +2,7 @@
 //! for, the orientation of each Zener in the antiseries string and the safety cautions.
 
 use super::common::{Rig, Stimulus};
-use super::ratings::{ratings, RatingSource, Ratings};
+use super::ratings::{margin_text, ratings, RatingSource, Ratings, ValveRating};
 
 /// Standard power ratings of glass and plastic Zeners (W), smallest first.
 const ZENER_WATTS: [f64; 6] = [0.5, 1.0, 1.3, 2.0, 3.0, 5.0];
@@ -60,11 +60,13 @@ pub fn parts_list(
     let mut all = Vec::new();
     let mut worst_feed: f64 = 0.0;
     let mut cap = None;
+    let mut idle = None;
     for &pos in positions {
         let mut r = rig.with_gain(worst.gain);
         r.settings.position = pos;
         let name = r.position_name().to_string();
-        let (rat, _) = ratings(&r, &stimulus, source, cap_rating_volts)?;
+        let (rat, outcome) = ratings(&r, &stimulus, source, cap_rating_volts)?;
+        idle.get_or_insert(outcome.idle);
         worst_feed = worst_feed.max(rat.feed_resistor_watts);
         cap = Some(rat.cap);
         for p in &rat.parts {
@@ -146,6 +148,94 @@ pub fn parts_list(
         worst_case: "-".into(),
         minimum_rating: "-".into(),
     });
+    // Each preamp stage's parts, by their circuit-file keys, in signal order from the jack.
+    for (k, st) in rig.circuit.preamp.iter().enumerate() {
+        use breakdown_dsp::circuit::Network;
+        use breakdown_dsp::units::si;
+        let mut parts: Vec<(String, String)> = vec![
+            ("grid_stopper".into(), si(st.grid_stopper, "ohm")),
+            ("plate_resistor".into(), si(st.plate_resistor, "ohm")),
+            ("cathode_resistor".into(), si(st.cathode_resistor, "ohm")),
+        ];
+        if st.cathode_bypass > 0.0 {
+            parts.push(("cathode_bypass".into(), si(st.cathode_bypass, "F")));
+        }
+        parts.push(("coupling_cap".into(), si(st.coupling_cap, "F")));
+        match &st.network {
+            Network::GridLeak(r) => parts.push(("grid_leak".into(), si(*r, "ohm"))),
+            Network::Volume(v) => {
+                parts.push((
+                    "volume.resistance".into(),
+                    format!(
+                        "{} {}",
+                        si(v.resistance, "ohm"),
+                        format!("{:?}", v.law).to_lowercase()
+                    ),
+                ));
+                if v.bright_cap > 0.0 {
+                    parts.push(("volume.bright_cap".into(), si(v.bright_cap, "F")));
+                }
+            }
+            Network::Divider(d) => {
+                parts.push(("divider.series".into(), si(d.series, "ohm")));
+                if d.series_cap > 0.0 {
+                    parts.push(("divider.series_cap".into(), si(d.series_cap, "F")));
+                }
+                parts.push(("divider.shunt".into(), si(d.shunt, "ohm")));
+            }
+        }
+        for (key, value) in parts {
+            lines.push(Line {
+                item: format!("stage {} {key}", k + 1),
+                position: "all".into(),
+                value,
+                part_number: "-".into(),
+                orientation: "-".into(),
+                worst_case: "-".into(),
+                minimum_rating: "-".into(),
+            });
+        }
+    }
+    if let Some(idle) = idle {
+        let circ = &rig.circuit;
+        let mut tubes: Vec<(String, breakdown_dsp::devices::TubeType)> = circ
+            .preamp
+            .iter()
+            .enumerate()
+            .map(|(k, p)| (format!("stage {}", k + 1), p.tube))
+            .collect();
+        tubes.push((
+            format!("stage {} (gain stage)", circ.preamp.len() + 1),
+            circ.gain_stage.tube,
+        ));
+        tubes.push(("cathode follower".into(), circ.follower.tube));
+        for ((name, tube), v) in tubes.iter().zip(idle.valves()) {
+            let vr = ValveRating::new(*tube, v);
+            lines.push(Line {
+                item: format!("valve, {name}"),
+                position: "all".into(),
+                value: tube.name().into(),
+                part_number: "-".into(),
+                orientation: "-".into(),
+                worst_case: format!(
+                    "idle: {:.1} V plate to cathode, {:.3} W plate dissipation",
+                    vr.plate_volts, vr.plate_watts
+                ),
+                minimum_rating: format!(
+                    "{} V, {} W per section (from memory of the datasheet): dissipation {} {}{}",
+                    vr.limits.plate_volts,
+                    vr.limits.plate_watts,
+                    margin_text(vr.watts_margin),
+                    vr.watts_verdict().label(),
+                    if vr.volts_over() {
+                        "; plate voltage over the rating"
+                    } else {
+                        ""
+                    }
+                ),
+            });
+        }
+    }
     Ok((lines, all))
 }
 

@@ -419,3 +419,110 @@ pub fn spread_text(s: &Spread) -> String {
         corners.join("; ")
     )
 }
+
+/// Maximum ratings of one triode section (design-centre, from memory of the common datasheets: 12AX7 / ECC83
+/// 330 V plate, 1.2 W; 12AT7 / ECC81 300 V, 2.5 W; 12AU7 / ECC82 330 V, 2.75 W).
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub struct ValveRatingLimits {
+    pub plate_volts: f64,
+    pub plate_watts: f64,
+}
+
+/// The ratings of a valve type the model knows (from memory of the common datasheets, per triode section).
+pub fn valve_limits(tube: breakdown_dsp::devices::triode::TubeType) -> ValveRatingLimits {
+    use breakdown_dsp::devices::triode::TubeType;
+    match tube {
+        TubeType::Ax7 => ValveRatingLimits {
+            plate_volts: 330.0,
+            plate_watts: 1.2,
+        },
+        TubeType::At7 => ValveRatingLimits {
+            plate_volts: 300.0,
+            plate_watts: 2.5,
+        },
+        TubeType::Au7 => ValveRatingLimits {
+            plate_volts: 330.0,
+            plate_watts: 2.75,
+        },
+    }
+}
+
+/// One valve at idle against its type's ratings: margins (rating / load) of plate voltage (plate to cathode)
+/// and plate dissipation, with the verdict of the worse one.
+#[derive(Clone, Debug, PartialEq)]
+pub struct ValveRating {
+    pub tube: &'static str,
+    pub plate_volts: f64,
+    pub plate_watts: f64,
+    pub limits: ValveRatingLimits,
+    pub volts_margin: f64,
+    pub watts_margin: f64,
+}
+
+impl ValveRating {
+    pub fn new(
+        tube: breakdown_dsp::devices::triode::TubeType,
+        idle: &breakdown_dsp::engine::ValveReadout,
+    ) -> ValveRating {
+        let limits = valve_limits(tube);
+        let plate_volts = idle.plate_volts - idle.cathode_volts;
+        let plate_watts = idle.plate_watts();
+        let margin = |rating: f64, load: f64| {
+            if load > 0.0 {
+                rating / load
+            } else {
+                f64::INFINITY
+            }
+        };
+        ValveRating {
+            tube: tube.name(),
+            plate_volts,
+            plate_watts,
+            limits,
+            volts_margin: margin(limits.plate_volts, plate_volts),
+            watts_margin: margin(limits.plate_watts, plate_watts),
+        }
+    }
+    /// Plate voltage above its rating (a plate voltage rating is a limit, not a derated figure: no "thin").
+    pub fn volts_over(&self) -> bool {
+        self.volts_margin < 1.0
+    }
+    /// Verdict on plate dissipation, as for the Zeners.
+    pub fn watts_verdict(&self) -> Verdict {
+        Verdict::from_margin(self.watts_margin)
+    }
+}
+
+#[cfg(test)]
+mod valve_rating_tests {
+    use super::*;
+    use breakdown_dsp::devices::triode::TubeType;
+    use breakdown_dsp::engine::ValveReadout;
+
+    #[test]
+    fn follower_with_1k_cathode_at_400_v_is_over_its_dissipation() {
+        // Hand calculation: plate at 400 V, cathode at 200 V, 10 mA -> 200 V * 10 mA = 2 W against the
+        // 12AX7's 1.2 W (from memory of the datasheet): margin 0.6x, over the rating.
+        let idle = ValveReadout {
+            plate_volts: 400.0,
+            grid_volts: 198.0,
+            cathode_volts: 200.0,
+            plate_current: 10e-3,
+            grid_current: 0.0,
+        };
+        let r = ValveRating::new(TubeType::Ax7, &idle);
+        assert!((r.plate_watts - 2.0).abs() < 1e-12);
+        assert!((r.watts_margin - 0.6).abs() < 1e-12);
+        assert_eq!(r.watts_verdict(), Verdict::Over);
+        assert!(!r.volts_over());
+        // A 12AX7 plate at 350 V above its cathode exceeds the 330 V rating.
+        let hot = ValveReadout {
+            plate_volts: 351.0,
+            cathode_volts: 1.0,
+            plate_current: 0.5e-3,
+            ..idle
+        };
+        assert!(ValveRating::new(TubeType::Ax7, &hot).volts_over());
+        assert!(!ValveRating::new(TubeType::At7, &idle).volts_over());
+    }
+}
