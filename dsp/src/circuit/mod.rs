@@ -445,7 +445,7 @@ impl Circuit {
         let table: toml::Table = toml::from_str(text).map_err(|e| {
             CircuitError(format!(
                 "circuit file is not valid TOML: {}",
-                e.to_string().trim()
+                clip_lines(e.to_string().trim(), 160)
             ))
         })?;
         if table.is_empty() {
@@ -973,6 +973,18 @@ impl Settings {
         *slot = ROTATION.check("--set", key, v)?;
         Ok(())
     }
+}
+
+/// `text` with every line cut to at most `width` characters (marked with "..."), so a parser's message that
+/// quotes the offending line never echoes a huge line of the file back whole.
+fn clip_lines(text: &str, width: usize) -> String {
+    text.lines()
+        .map(|line| match line.char_indices().nth(width) {
+            Some((cut, _)) => format!("{}...", &line[..cut]),
+            None => line.to_string(),
+        })
+        .collect::<Vec<_>>()
+        .join("\n")
 }
 
 #[cfg(test)]
