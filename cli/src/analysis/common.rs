@@ -8,6 +8,41 @@ use std::f64::consts::PI;
 /// Host sample rate of every analysis render (Hz).
 pub const RATE: f64 = 48_000.0;
 
+/// One valve of a circuit as the analyses name it.
+#[derive(Clone, Debug, PartialEq)]
+pub struct ValveInfo {
+    /// "stage 1", .., "stage N (gain stage)", "cathode follower".
+    pub name: String,
+    pub tube: breakdown_dsp::devices::TubeType,
+    /// The series resistor into its grid (ohm); None for the follower (DC coupled to the gain plate).
+    pub grid_stopper: Option<f64>,
+}
+
+/// Every valve of `circuit` in signal order from the jack (the order of the engine's meters and readouts).
+pub fn valves_of(circuit: &Circuit) -> Vec<ValveInfo> {
+    let mut v: Vec<ValveInfo> = circuit
+        .preamp
+        .iter()
+        .enumerate()
+        .map(|(k, p)| ValveInfo {
+            name: format!("stage {}", k + 1),
+            tube: p.tube,
+            grid_stopper: Some(p.grid_stopper),
+        })
+        .collect();
+    v.push(ValveInfo {
+        name: format!("stage {} (gain stage)", circuit.preamp.len() + 1),
+        tube: circuit.gain_stage.tube,
+        grid_stopper: Some(circuit.gain_stage.grid_stopper),
+    });
+    v.push(ValveInfo {
+        name: "cathode follower".into(),
+        tube: circuit.follower.tube,
+        grid_stopper: None,
+    });
+    v
+}
+
 /// What the analysis renders: a circuit, the pot and switch settings and the oversampling.
 #[derive(Clone, Debug)]
 pub struct Rig {

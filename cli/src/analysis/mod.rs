@@ -195,20 +195,39 @@ pub fn onset(a: OnsetArgs) -> Result<(), String> {
         "{} at gain {:.2}, {:.0} Hz tone bursts:",
         title, rig.settings.gain, a.tone_hz
     );
-    println!("{}", onset::summary(&rig, &onsets));
     let c = &map.criteria;
+    println!("{}", onset::summary(&rig, c, &onsets));
+    let grids: Vec<String> = c
+        .names
+        .iter()
+        .zip(&c.grid_current)
+        .filter_map(|(n, g)| g.map(|g| format!("{n} > {:.2} uA", g * 1e6)))
+        .collect();
+    let cutoffs: Vec<String> = c
+        .names
+        .iter()
+        .zip(&c.cutoff_current)
+        .map(|(n, i)| format!("{n} < {:.1} uA", i * 1e6))
+        .collect();
     println!(
-        "  criteria: pair current > {:.0} uA; gain grid current > {:.2} uA; plate current below 2% of idle \
-         (gain valve < {:.1} uA, follower < {:.1} uA)",
+        "  criteria: pair current > {:.0} uA; grid current: {}; plate current below 2% of idle: {}",
         c.zener_current * 1e6,
-        c.gain_grid_current * 1e6,
-        c.gain_cutoff_current * 1e6,
-        c.follower_cutoff_current * 1e6
+        grids.join(", "),
+        cutoffs.join(", ")
     );
     for (l, v) in &onsets {
         match v {
-            Some(v) => println!("  {:<26} starts at {:.3} V peak at the jack", l.label(), v),
-            None => println!("  {:<26} not reached up to 100 V peak", l.label()),
+            Some(v) if *v <= onset::ONSET_LOW => println!(
+                "  {:<38} already at {} peak at the jack (the quietest level tried)",
+                c.label(*l),
+                onset::volts_text(*v)
+            ),
+            Some(v) => println!(
+                "  {:<38} starts at {} peak at the jack",
+                c.label(*l),
+                onset::volts_text(*v)
+            ),
+            None => println!("  {:<38} not reached up to 100 V peak", c.label(*l)),
         }
     }
     println!(

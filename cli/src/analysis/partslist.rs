@@ -1,7 +1,7 @@
 //! `breakdown parts`: a parts list for the switch layout with the minimum ratings the worst-case render asks
 //! for, the orientation of each Zener in the antiseries string and the safety cautions.
 
-use super::common::{Rig, Stimulus};
+use super::common::{valves_of, Rig, Stimulus};
 use super::ratings::{margin_text, ratings, RatingSource, Ratings, ValveRating};
 
 /// Standard power ratings of glass and plastic Zeners (W), smallest first.
@@ -198,17 +198,10 @@ pub fn parts_list(
     }
     if let Some(idle) = idle {
         let circ = &rig.circuit;
-        let mut tubes: Vec<(String, breakdown_dsp::devices::TubeType)> = circ
-            .preamp
-            .iter()
-            .enumerate()
-            .map(|(k, p)| (format!("stage {}", k + 1), p.tube))
+        let tubes: Vec<(String, breakdown_dsp::devices::TubeType)> = valves_of(circ)
+            .into_iter()
+            .map(|v| (v.name, v.tube))
             .collect();
-        tubes.push((
-            format!("stage {} (gain stage)", circ.preamp.len() + 1),
-            circ.gain_stage.tube,
-        ));
-        tubes.push(("cathode follower".into(), circ.follower.tube));
         for ((name, tube), v) in tubes.iter().zip(idle.valves()) {
             let vr = ValveRating::new(*tube, v);
             lines.push(Line {

@@ -24,44 +24,53 @@ fn rig(position: usize, gain: f64, quality: Quality) -> Rig {
     Rig::new(Circuit::one_stage(), settings, quality).unwrap()
 }
 
-/// What a direct per-sample render at 1x says about each element, read from the stage's own readouts
-/// (`Engine::stage().probe()`, one internal sample per host sample at 1x), not from the meters.
-fn direct_flags(rig: &Rig, gain: f64, volts: f64, criteria: &Criteria) -> [bool; 4] {
+/// What a direct per-sample render at 1x says about each element, read from the valves' own readouts
+/// (`Engine::readout()`, one internal sample per host sample at 1x), not from the meters: the elements that
+/// limit at some instant, in no particular order.
+fn direct_flags(rig: &Rig, gain: f64, volts: f64, criteria: &Criteria) -> Vec<Limiter> {
     let mut settings = rig.settings;
     settings.gain = gain;
     let mut e = Engine::new(&rig.circuit, RATE, Quality::X1, settings).unwrap();
     e.set_input_calibration(1.0);
     // A longer steady tone than the map's burst: 5 ms fade, then 60 ms measured after 5 ms.
     let s = Stimulus::tone(volts, 1000.0, 0.005, 0.005, 0.065);
-    let mut f = [false; 4];
+    let mut f = Vec::new();
+    let mut set = |l: Limiter, on: bool| {
+        if on && !f.contains(&l) {
+            f.push(l);
+        }
+    };
     for (n, x) in s.volts.iter().enumerate() {
         e.process_sample(*x);
         if n < s.measure_from {
             continue;
         }
         let p = e.readout();
-        f[0] |= p.zener_current.abs() > criteria.zener_current;
-        f[1] |= p.gain_stage().grid_current > criteria.gain_grid_current;
-        f[2] |= p.gain_stage().plate_current < criteria.gain_cutoff_current;
-        f[3] |= p.follower().plate_current < criteria.follower_cutoff_current;
+        set(
+            Limiter::Zener,
+            p.zener_current.abs() > criteria.zener_current,
+        );
+        for (i, v) in p.valves().iter().enumerate() {
+            if let Some(g) = criteria.grid_current[i] {
+                set(Limiter::Grid(i), v.grid_current > g);
+            }
+            set(
+                Limiter::Cutoff(i),
+                v.plate_current < criteria.cutoff_current[i],
+            );
+        }
     }
     f
-}
-
-fn index(l: Limiter) -> usize {
-    match l {
-        Limiter::Zener => 0,
-        Limiter::GainGrid => 1,
-        Limiter::GainCutoff => 2,
-        Limiter::FollowerCutoff => 3,
-        Limiter::Clean => usize::MAX,
-    }
 }
 
 /// Issue 5: for three cells on either side of the onset boundary, a direct render confirms the limiting
 /// element the map names (and that the clean side is clean).
 fn check_boundary(position: usize, gains: Vec<f64>, low: f64, high: f64) {
-    let r = rig(position, 0.8, Quality::X2);
+    check_boundary_of(&rig(position, 0.8, Quality::X2), gains, low, high);
+}
+
+fn check_boundary_of(r: &Rig, gains: Vec<f64>, low: f64, high: f64) {
+    let r = r.clone();
     let sweep = Sweep {
         gains,
         levels: super::common::log_space(low, high, 9),
@@ -81,14 +90,15 @@ fn check_boundary(position: usize, gains: Vec<f64>, low: f64, high: f64) {
         let (clean, limited) = (&row[k - 1], &row[k]);
         assert!(row[k..].iter().all(|c| c.limiter != Limiter::Clean));
         let d = direct_flags(&r, clean.gain, clean.input_volts, &map.criteria);
-        assert_eq!(
-            d, [false; 4],
-            "clean cell gain {} at {} V",
-            clean.gain, clean.input_volts
+        assert!(
+            d.is_empty(),
+            "clean cell gain {} at {} V: direct render {d:?}",
+            clean.gain,
+            clean.input_volts
         );
         let d = direct_flags(&r, limited.gain, limited.input_volts, &map.criteria);
         assert!(
-            d[index(limited.limiter)],
+            d.contains(&limited.limiter),
             "cell gain {} at {} V: map says {:?}, direct render {:?}",
             limited.gain,
             limited.input_volts,
@@ -518,14 +528,14 @@ fn before_valve_suggestion_clamps_before_any_valve_limits() {
     .unwrap();
     let criteria = onset::criteria_for(&with).unwrap();
     let ladder = super::common::log_space(0.2, 10.0, 40);
-    let first = |which: &dyn Fn(&[bool; 4]) -> bool| {
+    let first = |which: &dyn Fn(&[Limiter]) -> bool| {
         ladder
             .iter()
             .position(|&v| which(&direct_flags(&with, gain, v, &criteria)))
             .unwrap_or(usize::MAX)
     };
-    let zener = first(&|f| f[0]);
-    let valve = first(&|f| f[1] || f[2] || f[3]);
+    let zener = first(&|f| f.contains(&Limiter::Zener));
+    let valve = first(&|f| f.iter().any(|l| *l != Limiter::Zener));
     assert!(
         zener < ladder.len(),
         "the pair never conducts on the ladder"
@@ -534,4 +544,125 @@ fn before_valve_suggestion_clamps_before_any_valve_limits() {
         zener < valve,
         "Zeners from step {zener}, valves from step {valve}"
     );
+}
+
+fn preamp_rig(position: usize, gain: f64, quality: Quality) -> Rig {
+    let settings = Settings {
+        gain,
+        level: 0.5,
+        position,
+        ..Default::default()
+    };
+    Rig::new(Circuit::builtin(), settings, quality).unwrap()
+}
+
+#[test]
+fn preamp_onset_boundary_agrees_with_direct_renders_for_every_stage() {
+    // The built-in preamp (two stages, the gain stage, the follower) with the clamp off: the map's first
+    // limiter in each row, for whichever stage it is, is confirmed by a direct render's valve readouts.
+    let r = preamp_rig(0, 0.5, Quality::X2);
+    let gains = vec![0.0, 0.3, 0.6];
+    check_boundary_of(&r, gains.clone(), 2e-4, 4.0);
+    let map = onset::map(
+        &r,
+        &Sweep {
+            gains,
+            levels: super::common::log_space(2e-4, 4.0, 9),
+            tone_hz: 1000.0,
+        },
+    )
+    .unwrap();
+    // With the gain pot at zero only the first stage sees the guitar: it is the first to limit there, and the
+    // map names it by its stage number.
+    let first_row = &map.cells[0];
+    let first = first_row
+        .iter()
+        .find(|c| c.limiter != Limiter::Clean)
+        .expect("the first stage limits at gain 0 by 4 V");
+    assert!(
+        matches!(first.limiter, Limiter::Grid(0) | Limiter::Cutoff(0)),
+        "gain 0: first limiter {}",
+        map.criteria.label(first.limiter)
+    );
+    assert_eq!(map.criteria.names[0], "stage 1");
+    assert_eq!(map.criteria.names[2], "stage 3 (gain stage)");
+    let csv = onset::to_csv(&map);
+    assert!(csv
+        .lines()
+        .next()
+        .unwrap()
+        .contains("stage2_plate_current_min_amps"));
+}
+
+#[test]
+fn first_stage_grid_current_starts_where_its_grid_reaches_its_cathode_bias() {
+    // Common practice (valve handbooks, from memory): a self-biased stage's grid draws current once its
+    // positive peaks come within a few tenths of a volt of the cathode, so the input level at which the first
+    // stage's grid starts to limit is its cathode bias less that margin. The margin is the Dempwolf-Zoelzer
+    // grid law's (DAFx-11) Vgk at the stopper criterion, about -0.35 V. Under drive the bias moves: the plate
+    // current's law is convex, so its average rises with the swing and lifts the bypassed cathode (a later
+    // onset than the idle bias says, never an earlier one). The stage is fed straight from the jack through
+    // its stopper, so only its own bias sets the level.
+    let r = preamp_rig(0, 0.0, Quality::X2);
+    let criteria = onset::criteria_for(&r).unwrap();
+    let onsets = onset::onsets_at_gain(&r, 1000.0, 100.0).unwrap();
+    let (first, level) = onsets
+        .iter()
+        .filter_map(|(l, v)| v.map(|v| (*l, v)))
+        .min_by(|a, b| a.1.total_cmp(&b.1))
+        .expect("something limits by 100 V");
+    assert_eq!(
+        first,
+        Limiter::Grid(0),
+        "first to limit at gain 0: {}",
+        criteria.label(first)
+    );
+    let idle = r.engine().unwrap().readout().valves()[0];
+    let (_, vgk) = onset::grid_current_threshold(r.circuit.preamp[0].grid_stopper);
+    let at_idle_bias = idle.cathode_volts - idle.grid_volts + vgk;
+    assert!(
+        level > at_idle_bias && level < 1.25 * at_idle_bias,
+        "stage 1 grid current from {level:.3} V peak; idle bias {:.3} V less the {vgk:.3} V margin: \
+         {at_idle_bias:.3} V",
+        idle.cathode_volts - idle.grid_volts
+    );
+    // The bias under drive, read from the cathode's average over a direct render at that level, accounts
+    // for the rest.
+    let mut e = Engine::new(&r.circuit, RATE, Quality::X1, r.settings).unwrap();
+    e.set_input_calibration(1.0);
+    let s = Stimulus::tone(level, 1000.0, 0.005, 0.005, 0.065);
+    let (mut sum, mut count) = (0.0, 0);
+    for (n, x) in s.volts.iter().enumerate() {
+        e.process_sample(*x);
+        if n >= s.measure_from {
+            let v = e.readout().valves()[0];
+            sum += v.cathode_volts - idle.grid_volts;
+            count += 1;
+        }
+    }
+    let driven_bias = sum / count as f64;
+    // At the grid's positive peak the cathode's own 1 kHz swing is Re(Vk/Vg) of it, with
+    // Vk/Vg = (mu + 1) Zk / (rp + RL + (mu + 1) Zk) (the textbook triode with a cathode impedance), Zk the
+    // cathode resistor parallel to its bypass, RL the plate resistor parallel to the 1 M pot it feeds.
+    let p = &r.circuit.preamp[0];
+    let (mu, rp) = (100.0, 62.5e3); // 12AX7 datasheet typical operation (from memory)
+    let w = 2.0 * std::f64::consts::PI * 1000.0;
+    let (zr, zi) = {
+        // Zk = Rk / (1 + j w Rk C)
+        let d = 1.0 + (w * p.cathode_resistor * p.cathode_bypass).powi(2);
+        let x = w * p.cathode_resistor * p.cathode_bypass;
+        (p.cathode_resistor / d, -p.cathode_resistor * x / d)
+    };
+    let rl = p.plate_resistor * 1e6 / (p.plate_resistor + 1e6);
+    let (nr, ni) = ((mu + 1.0) * zr, (mu + 1.0) * zi);
+    let (dr, di) = (rp + rl + nr, ni);
+    let follow = (nr * dr + ni * di) / (dr * dr + di * di);
+    let at_driven_bias = (driven_bias + vgk) / (1.0 - follow);
+    assert!(
+        (level - at_driven_bias).abs() < 0.04 * at_driven_bias,
+        "stage 1 grid current from {level:.3} V peak; bias under drive {driven_bias:.3} V less the margin, \
+         the cathode following {follow:.3} of the grid: {at_driven_bias:.3} V"
+    );
+    let text = onset::summary(&r, &criteria, &onsets);
+    assert!(text.contains("stage 1 grid current"), "{text}");
 }
