@@ -579,3 +579,138 @@ fn bad_cabinet_key_is_named_with_its_line() {
         &["listen", "speaker"],
     );
 }
+
+/// "100 kohm", "2.7 kohm", "1 Mohm": a resistance as the report writes it, formatted here on its own.
+fn ohms_text(r: f64) -> String {
+    if r >= 1e6 {
+        format!("{} Mohm", r / 1e6)
+    } else if r >= 1e3 {
+        format!("{} kohm", r / 1e3)
+    } else {
+        format!("{r} ohm")
+    }
+}
+
+/// The HTML table row (`<tr>..</tr>`) whose first cell is `first`.
+fn html_row<'a>(html: &'a str, first: &str) -> Option<&'a str> {
+    let at = html.find(&format!("<tr><td class=\"l\">{first}</td>"))?;
+    let end = html[at..].find("</tr>")? + at;
+    Some(&html[at..end])
+}
+
+#[test]
+fn report_lists_the_preamp_parts_of_the_circuit_file() {
+    let dir = scratch("preamp-parts");
+    let file = Path::new(env!("CARGO_MANIFEST_DIR")).join("../presets-demo/builtin-preamp.toml");
+    let text = std::fs::read_to_string(&file).unwrap();
+    std::fs::write(dir.join("circuit.toml"), &text).unwrap();
+    write_di(&dir.join("take.wav"), 2.0, 0.3);
+    std::fs::write(
+        dir.join("plan.toml"),
+        "di = [\"take.wav\"]\ncircuit = \"circuit.toml\"\noutput = \"out\"\nquality = 2\n\
+         [ab]\nsegment_seconds = 1.0\n\
+         [[variant]]\nname = \"off\"\nposition = 0\n\
+         [[variant]]\nname = \"explicit 8.2\"\npositive = 8.2\nnegative = 8.2\n",
+    )
+    .unwrap();
+    let run_out = run(&[
+        "compare",
+        "--quiet",
+        dir.join("plan.toml").to_str().unwrap(),
+    ]);
+    assert!(
+        run_out.status.success(),
+        "compare failed: {}",
+        String::from_utf8_lossy(&run_out.stderr)
+    );
+    let out = dir.join("out");
+    let json: serde_json::Value =
+        serde_json::from_str(&std::fs::read_to_string(out.join("report.json")).unwrap()).unwrap();
+    let html = std::fs::read_to_string(out.join("report.html")).unwrap();
+
+    // The circuit file read here with the toml crate, not with the project's reader.
+    let circuit: toml::Value = toml::from_str(&text).unwrap();
+    let stages = circuit["preamp"].as_array().unwrap();
+    assert!(!stages.is_empty());
+    let top_supply = circuit["supply_volts"].as_float().unwrap();
+
+    // One circuit for both variants (an explicit pair is only another switch position): one section.
+    let sections = json["preamp_parts"].as_array().unwrap();
+    assert_eq!(sections.len(), 1);
+    let section = &sections[0];
+    assert_eq!(section["variants"].as_array().unwrap().len(), 2);
+    let listed = section["stages"].as_array().unwrap();
+    let valves = section["valves"].as_array().unwrap();
+    assert!(html.contains("<h2>Preamp parts</h2>"));
+
+    for (k, stage) in stages.iter().enumerate() {
+        let n = k + 1;
+        for key in ["plate_resistor", "cathode_resistor"] {
+            let want = stage[key].as_float().unwrap();
+            let entry = listed
+                .iter()
+                .find(|e| e["stage"].as_u64() == Some(n as u64) && e["key"] == key)
+                .unwrap_or_else(|| panic!("report.json lacks stage {n} {key}"));
+            assert_eq!(entry["unit"], "ohm");
+            let got = entry["amount"].as_f64().unwrap();
+            assert!(
+                (got - want).abs() <= 1e-9 * want,
+                "stage {n} {key}: {got} vs {want}"
+            );
+            let item = format!("stage {n} {key}");
+            let value = ohms_text(want);
+            assert_eq!(entry["value"], value.as_str());
+            let row = html_row(&html, &item).unwrap_or_else(|| panic!("report.html lacks {item}"));
+            assert!(row.contains(&format!(">{value}<")), "{row}");
+        }
+    }
+
+    // A valve line per valve: each [[preamp]] stage, the gain stage and the follower, in that order.
+    let mut tubes: Vec<&str> = stages.iter().map(|s| s["tube"].as_str().unwrap()).collect();
+    tubes.push(circuit["gain_stage"]["tube"].as_str().unwrap());
+    tubes.push(circuit["follower"]["tube"].as_str().unwrap());
+    assert_eq!(valves.len(), tubes.len());
+    for (v, tube) in valves.iter().zip(&tubes) {
+        assert_eq!(v["tube"], *tube);
+        let item = v["item"].as_str().unwrap();
+        let row = html_row(&html, item).unwrap_or_else(|| panic!("report.html lacks {item}"));
+        assert!(row.contains(&format!(">{tube}<")), "{row}");
+        assert!(row.contains("from memory of the datasheet"), "{row}");
+        assert!(
+            row.contains(v["dissipation_state"].as_str().unwrap()),
+            "{row}"
+        );
+    }
+    for (k, (stage, v)) in stages.iter().zip(valves).enumerate() {
+        assert_eq!(v["item"], format!("valve, stage {}", k + 1).as_str());
+        // A resistor-loaded plate sits below its supply, and its dissipation Vpk * I with
+        // Vpk = Vs - I (Ra + Rk) is at most Vs^2 / (4 (Ra + Rk)) (maximum power transfer theorem).
+        let vs = stage
+            .get("supply_volts")
+            .and_then(|s| s.as_float())
+            .unwrap_or(top_supply);
+        let r = stage["plate_resistor"].as_float().unwrap()
+            + stage["cathode_resistor"].as_float().unwrap();
+        let volts = v["idle_plate_volts"].as_f64().unwrap();
+        let watts = v["idle_plate_watts"].as_f64().unwrap();
+        assert!(
+            volts > 0.0 && volts < vs,
+            "stage {}: {volts} V of {vs}",
+            k + 1
+        );
+        assert!(
+            watts > 0.0 && watts <= vs * vs / (4.0 * r) * (1.0 + 1e-9),
+            "stage {}: {watts} W",
+            k + 1
+        );
+        // 12AX7 / ECC83: 1.2 W plate dissipation per section (from memory of the datasheet).
+        if stage["tube"].as_str() == Some("12AX7") {
+            assert_eq!(v["rating_plate_watts"].as_f64(), Some(1.2));
+        }
+    }
+
+    // The safety text of docs/model.md section 8 sits with the section, before the next one.
+    let at = html.find("<h2>Preamp parts</h2>").unwrap();
+    let next = html[at + 5..].find("<h2>").unwrap() + at + 5;
+    assert!(html[at..next].contains("filter capacitors stay charged after power-off"));
+}

@@ -3,6 +3,7 @@
 
 use super::common::{valves_of, Rig, Stimulus};
 use super::ratings::{margin_text, ratings, RatingSource, Ratings, ValveRating};
+use breakdown_dsp::{Circuit, Readout};
 
 /// Standard power ratings of glass and plastic Zeners (W), smallest first.
 const ZENER_WATTS: [f64; 6] = [0.5, 1.0, 1.3, 2.0, 3.0, 5.0];
@@ -148,88 +149,161 @@ pub fn parts_list(
         worst_case: "-".into(),
         minimum_rating: "-".into(),
     });
-    // Each preamp stage's parts, by their circuit-file keys, in signal order from the jack.
-    for (k, st) in rig.circuit.preamp.iter().enumerate() {
-        use breakdown_dsp::circuit::Network;
-        use breakdown_dsp::units::si;
-        let mut parts: Vec<(String, String)> = vec![
-            ("grid_stopper".into(), si(st.grid_stopper, "ohm")),
-            ("plate_resistor".into(), si(st.plate_resistor, "ohm")),
-            ("cathode_resistor".into(), si(st.cathode_resistor, "ohm")),
-        ];
-        if st.cathode_bypass > 0.0 {
-            parts.push(("cathode_bypass".into(), si(st.cathode_bypass, "F")));
+    lines.extend(preamp_lines(&rig.circuit, idle.as_ref()));
+    Ok((lines, all))
+}
+
+/// One part of a preamp stage by its circuit-file key, in SI units.
+#[derive(Clone, Debug, PartialEq)]
+pub struct StagePart {
+    /// Stage number, counted from 1 at the input jack.
+    pub stage: usize,
+    /// The circuit-file key ("plate_resistor", "volume.bright_cap", ...).
+    pub key: String,
+    /// The value in SI base units (ohm or F).
+    pub amount: f64,
+    /// "ohm" or "F".
+    pub unit: &'static str,
+    /// What the number alone does not say (a pot's taper), if anything.
+    pub note: Option<String>,
+}
+
+impl StagePart {
+    /// "stage 1 plate_resistor".
+    pub fn item(&self) -> String {
+        format!("stage {} {}", self.stage, self.key)
+    }
+    /// "100 kohm", "1 Mohm log".
+    pub fn value(&self) -> String {
+        let v = breakdown_dsp::units::si(self.amount, self.unit);
+        match &self.note {
+            Some(n) => format!("{v} {n}"),
+            None => v,
         }
-        parts.push(("coupling_cap".into(), si(st.coupling_cap, "F")));
+    }
+}
+
+/// Every preamp stage's parts, by their circuit-file keys, in signal order from the jack.
+pub fn stage_parts(circuit: &Circuit) -> Vec<StagePart> {
+    use breakdown_dsp::circuit::Network;
+    let mut out = Vec::new();
+    for (k, st) in circuit.preamp.iter().enumerate() {
+        let mut add = |key: &str, amount: f64, unit: &'static str, note: Option<String>| {
+            out.push(StagePart {
+                stage: k + 1,
+                key: key.into(),
+                amount,
+                unit,
+                note,
+            })
+        };
+        add("grid_stopper", st.grid_stopper, "ohm", None);
+        add("plate_resistor", st.plate_resistor, "ohm", None);
+        add("cathode_resistor", st.cathode_resistor, "ohm", None);
+        if st.cathode_bypass > 0.0 {
+            add("cathode_bypass", st.cathode_bypass, "F", None);
+        }
+        add("coupling_cap", st.coupling_cap, "F", None);
         match &st.network {
-            Network::GridLeak(r) => parts.push(("grid_leak".into(), si(*r, "ohm"))),
+            Network::GridLeak(r) => add("grid_leak", *r, "ohm", None),
             Network::Volume(v) => {
-                parts.push((
-                    "volume.resistance".into(),
-                    format!(
-                        "{} {}",
-                        si(v.resistance, "ohm"),
-                        format!("{:?}", v.law).to_lowercase()
-                    ),
-                ));
+                add(
+                    "volume.resistance",
+                    v.resistance,
+                    "ohm",
+                    Some(format!("{:?}", v.law).to_lowercase()),
+                );
                 if v.bright_cap > 0.0 {
-                    parts.push(("volume.bright_cap".into(), si(v.bright_cap, "F")));
+                    add("volume.bright_cap", v.bright_cap, "F", None);
                 }
             }
             Network::Divider(d) => {
-                parts.push(("divider.series".into(), si(d.series, "ohm")));
+                add("divider.series", d.series, "ohm", None);
                 if d.series_cap > 0.0 {
-                    parts.push(("divider.series_cap".into(), si(d.series_cap, "F")));
+                    add("divider.series_cap", d.series_cap, "F", None);
                 }
-                parts.push(("divider.shunt".into(), si(d.shunt, "ohm")));
+                add("divider.shunt", d.shunt, "ohm", None);
             }
         }
-        for (key, value) in parts {
-            lines.push(Line {
-                item: format!("stage {} {key}", k + 1),
-                position: "all".into(),
-                value,
-                part_number: "-".into(),
-                orientation: "-".into(),
-                worst_case: "-".into(),
-                minimum_rating: "-".into(),
-            });
-        }
     }
-    if let Some(idle) = idle {
-        let circ = &rig.circuit;
-        let tubes: Vec<(String, breakdown_dsp::devices::TubeType)> = valves_of(circ)
-            .into_iter()
-            .map(|v| (v.name, v.tube))
-            .collect();
-        for ((name, tube), v) in tubes.iter().zip(idle.valves()) {
-            let vr = ValveRating::new(*tube, v);
-            lines.push(Line {
-                item: format!("valve, {name}"),
-                position: "all".into(),
-                value: tube.name().into(),
-                part_number: "-".into(),
-                orientation: "-".into(),
-                worst_case: format!(
-                    "idle: {:.1} V plate to cathode, {:.3} W plate dissipation",
-                    vr.plate_volts, vr.plate_watts
-                ),
-                minimum_rating: format!(
-                    "{} V, {} W per section (from memory of the datasheet): dissipation {} {}{}",
-                    vr.limits.plate_volts,
-                    vr.limits.plate_watts,
-                    margin_text(vr.watts_margin),
-                    vr.watts_verdict().label(),
-                    if vr.volts_over() {
-                        "; plate voltage over the rating"
-                    } else {
-                        ""
-                    }
-                ),
-            });
-        }
+    out
+}
+
+/// One valve of the circuit at idle against its type's ratings.
+#[derive(Clone, Debug, PartialEq)]
+pub struct ValveLine {
+    /// "stage 1", "stage 3 (gain stage)", "cathode follower".
+    pub name: String,
+    pub rating: ValveRating,
+}
+
+impl ValveLine {
+    /// "valve, stage 1".
+    pub fn item(&self) -> String {
+        format!("valve, {}", self.name)
     }
-    Ok((lines, all))
+    /// "idle: 180.2 V plate to cathode, 0.123 W plate dissipation".
+    pub fn idle_text(&self) -> String {
+        format!(
+            "idle: {:.1} V plate to cathode, {:.3} W plate dissipation",
+            self.rating.plate_volts, self.rating.plate_watts
+        )
+    }
+    /// The ratings (from memory of the datasheet) and the verdict.
+    pub fn rating_text(&self) -> String {
+        let vr = &self.rating;
+        format!(
+            "{} V, {} W per section (from memory of the datasheet): dissipation {} {}{}",
+            vr.limits.plate_volts,
+            vr.limits.plate_watts,
+            margin_text(vr.watts_margin),
+            vr.watts_verdict().label(),
+            if vr.volts_over() {
+                "; plate voltage over the rating"
+            } else {
+                ""
+            }
+        )
+    }
+}
+
+/// Every valve in signal order (the preamp stages, the gain stage, the cathode follower) at the idle operating
+/// point `idle` of an engine built on `circuit`.
+pub fn valve_lines(circuit: &Circuit, idle: &Readout) -> Vec<ValveLine> {
+    valves_of(circuit)
+        .into_iter()
+        .zip(idle.valves())
+        .map(|(valve, v)| ValveLine {
+            name: valve.name,
+            rating: ValveRating::new(valve.tube, v),
+        })
+        .collect()
+}
+
+/// The preamp's lines of the list: each stage's parts, then (with an operating point) each valve at idle
+/// against its ratings.
+pub fn preamp_lines(circuit: &Circuit, idle: Option<&Readout>) -> Vec<Line> {
+    let blank = |item: String, value: String| Line {
+        item,
+        position: "all".into(),
+        value,
+        part_number: "-".into(),
+        orientation: "-".into(),
+        worst_case: "-".into(),
+        minimum_rating: "-".into(),
+    };
+    let mut lines: Vec<Line> = stage_parts(circuit)
+        .iter()
+        .map(|p| blank(p.item(), p.value()))
+        .collect();
+    for v in idle.map(|i| valve_lines(circuit, i)).unwrap_or_default() {
+        lines.push(Line {
+            worst_case: v.idle_text(),
+            minimum_rating: v.rating_text(),
+            ..blank(v.item(), v.rating.tube.into())
+        });
+    }
+    lines
 }
 
 fn csv_field(s: &str) -> String {

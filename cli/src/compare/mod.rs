@@ -16,12 +16,13 @@ use crate::audio::{self, Audio, Silence};
 use crate::files::{self, Temporary};
 use crate::listening::CabinetChoice;
 use crate::report::{
-    self, AbSegment, DiInfo, DiResult, PartInfo, PartLoad, Report, VariantInfo, ZenerLoad,
+    self, AbSegment, DiInfo, DiResult, PartInfo, PartLoad, PreampParts, Report, VariantInfo,
+    ZenerLoad,
 };
 use breakdown_dsp::engine::CLAMPED_CURRENT;
 use breakdown_dsp::oversampling::decimator_memory;
 use breakdown_dsp::parts::FAMILY_1N47XXA;
-use breakdown_dsp::{Engine, Meters, Probe};
+use breakdown_dsp::{Circuit, Engine, Meters, Probe};
 use indicatif::{ProgressBar, ProgressDrawTarget, ProgressStyle};
 use plan::{DiEntry, Plan, Variant};
 use std::io::IsTerminal;
@@ -587,6 +588,33 @@ fn variant_infos(plan: &Plan) -> Result<Vec<VariantInfo>, String> {
         .collect()
 }
 
+/// The preamp's parts, once per distinct circuit the variants use (the switch positions a variant adds do not
+/// make a circuit distinct), at the idle operating point of the first variant using it.
+fn preamp_parts(plan: &Plan) -> Result<Vec<PreampParts>, String> {
+    let mut groups: Vec<(Circuit, Vec<usize>)> = Vec::new();
+    for (i, v) in plan.variants.iter().enumerate() {
+        let mut key = v.circuit.clone();
+        key.clamp.position.clear();
+        match groups.iter_mut().find(|(c, _)| *c == key) {
+            Some((_, members)) => members.push(i),
+            None => groups.push((key, vec![i])),
+        }
+    }
+    groups
+        .into_iter()
+        .map(|(_, members)| {
+            let first = &plan.variants[members[0]];
+            let engine = Engine::new(&first.circuit, 48_000.0, first.quality, first.settings)
+                .map_err(|e| format!("variant '{}': {e}", first.name))?;
+            let names = members
+                .iter()
+                .map(|&i| plan.variants[i].name.clone())
+                .collect();
+            Ok(PreampParts::new(names, &first.circuit, &engine.readout()))
+        })
+        .collect()
+}
+
 /// Channels the chain's cabinet makes of a mono DI: 2 with a stereo impulse response, else 1.
 fn plan_output_channels(plan: &Plan) -> usize {
     match plan.listening.heard_cabinet() {
@@ -855,6 +883,7 @@ fn build_report(
     plan: &Plan,
     options: &Options,
     variants: Vec<VariantInfo>,
+    preamp_parts: Vec<PreampParts>,
     di: Vec<DiInfo>,
 ) -> Report {
     Report {
@@ -887,6 +916,7 @@ fn build_report(
         threshold_current_amps: THRESHOLD_CURRENT,
         clamped_current_amps: CLAMPED_CURRENT,
         variants,
+        preamp_parts,
         di,
         safety: report::SAFETY.into(),
     }
@@ -928,6 +958,7 @@ pub fn run_plan(plan_path: &Path, options: Options) -> Result<Outcome, String> {
     })?;
     let inputs = read_inputs(&plan)?;
     let mut variants = variant_infos(&plan)?;
+    let preamp_parts = preamp_parts(&plan)?;
 
     files::remove_stale(&plan.output);
     let mut temp = Temporary::new(files::sibling(&plan.output, files::PARTIAL_TAG));
@@ -977,7 +1008,7 @@ pub fn run_plan(plan_path: &Path, options: Options) -> Result<Outcome, String> {
         let results = results.into_iter().flatten().collect();
         di_infos.push(finish_di(&plan, i, input, results, &shared)?);
     }
-    let report = build_report(&plan, &options, variants, di_infos);
+    let report = build_report(&plan, &options, variants, preamp_parts, di_infos);
     write_report(&temp.path, &report, &options)?;
     install(&mut temp, &plan.output)?;
     Ok(Outcome {

@@ -180,6 +180,69 @@ fn variants_section(h: &mut String, report: &Report) {
     h.push_str("</table>\n");
 }
 
+fn preamp_section(h: &mut String, report: &Report) {
+    for parts in &report.preamp_parts {
+        if report.preamp_parts.len() > 1 {
+            let _ = write!(
+                h,
+                "<h2>Preamp parts: {}</h2>\n",
+                esc(&parts.variants.join(", "))
+            );
+        } else {
+            h.push_str("<h2>Preamp parts</h2>\n");
+        }
+        h.push_str(
+            "<p class=\"note\">Each stage before the gain stage by its circuit-file keys, in signal order from the \
+             input jack (SI units), as <code>breakdown parts</code> lists them.</p>\n",
+        );
+        if parts.stages.is_empty() {
+            h.push_str("<p class=\"note\">No preamp stages before the gain stage.</p>\n");
+        } else {
+            h.push_str("<table><tr><th class=\"l\">part</th><th class=\"l\">value</th></tr>\n");
+            for p in &parts.stages {
+                let _ = write!(
+                    h,
+                    "<tr><td class=\"l\">{}</td><td class=\"l\">{}</td></tr>\n",
+                    esc(&p.item),
+                    esc(&p.value)
+                );
+            }
+            h.push_str("</table>\n");
+        }
+        let _ = write!(
+            h,
+            "<p class=\"note\">Each valve at the idle operating point (no signal) against its type's maximum ratings \
+             per triode section (from memory of the datasheets); {}.</p>\n\
+             <table><tr><th class=\"l\">valve</th><th class=\"l\">type</th><th class=\"l\">idle load</th>\
+             <th class=\"l\">rating and verdict</th></tr>\n",
+            esc(&crate::analysis::ratings::margin_legend())
+        );
+        for v in &parts.valves {
+            let warn = v.dissipation_state != "ok" || v.plate_volts_over_rating;
+            let _ = write!(
+                h,
+                "<tr><td class=\"l\">{}</td><td class=\"l\">{}</td><td class=\"l\">{}</td><td class=\"l\">{}</td></tr>\n",
+                esc(&v.item),
+                esc(&v.tube),
+                esc(&v.idle),
+                if warn {
+                    format!("<span class=\"warn\">{}</span>", esc(&v.rating))
+                } else {
+                    esc(&v.rating)
+                }
+            );
+        }
+        h.push_str("</table>\n");
+    }
+    if !report.preamp_parts.is_empty() {
+        let _ = write!(
+            h,
+            "<div class=\"safety\"><b>Safety.</b> {}</div>\n",
+            esc(SAFETY)
+        );
+    }
+}
+
 fn tone_section(h: &mut String, report: &Report) -> Result<(), String> {
     let t = &report.tone;
     // THD_F is explained here, where the reader first meets it.
@@ -382,6 +445,7 @@ pub fn render(report: &Report) -> Result<String, String> {
     let mut h = String::new();
     head(&mut h, report);
     variants_section(&mut h, report);
+    preamp_section(&mut h, report);
     tone_section(&mut h, report)?;
     for di in &report.di {
         di_section(&mut h, report, di)?;

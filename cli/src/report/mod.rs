@@ -37,8 +37,110 @@ pub struct Report {
     /// Pair current above which a sample counts as clamped (A).
     pub clamped_current_amps: f64,
     pub variants: Vec<VariantInfo>,
+    /// The preamp's parts and valves, one entry per distinct circuit the variants use (usually one).
+    pub preamp_parts: Vec<PreampParts>,
     pub di: Vec<DiInfo>,
     pub safety: String,
+}
+
+/// The preamp of one circuit: each stage's parts by their circuit-file keys and each valve at idle against its
+/// ratings, as `breakdown parts` lists them (`crate::analysis::partslist`).
+#[derive(Clone, Debug, Serialize)]
+pub struct PreampParts {
+    /// The variants that use this circuit.
+    pub variants: Vec<String>,
+    pub stages: Vec<StagePartInfo>,
+    pub valves: Vec<ValveInfo>,
+}
+
+/// One part of a preamp stage.
+#[derive(Clone, Debug, Serialize)]
+pub struct StagePartInfo {
+    /// Counted from 1 at the input jack.
+    pub stage: usize,
+    /// The circuit-file key: "plate_resistor", "volume.bright_cap", ...
+    pub key: String,
+    /// "stage 1 plate_resistor".
+    pub item: String,
+    /// The value in SI base units (`unit`).
+    pub amount: f64,
+    /// "ohm" or "F".
+    pub unit: String,
+    /// "100 kohm", "1 Mohm log".
+    pub value: String,
+}
+
+/// One valve at the idle operating point against its type's ratings (from memory of the datasheets).
+#[derive(Clone, Debug, Serialize)]
+pub struct ValveInfo {
+    /// "stage 1", "stage 3 (gain stage)", "cathode follower".
+    pub name: String,
+    /// "valve, stage 1".
+    pub item: String,
+    /// "12AX7".
+    pub tube: String,
+    /// Plate to cathode at idle (V).
+    pub idle_plate_volts: f64,
+    /// Plate dissipation at idle (W).
+    pub idle_plate_watts: f64,
+    /// Maximum plate voltage per section (V), from memory of the datasheet.
+    pub rating_plate_volts: f64,
+    /// Maximum plate dissipation per section (W), from memory of the datasheet.
+    pub rating_plate_watts: f64,
+    /// Rating / idle dissipation; None when no current flows.
+    pub dissipation_margin: Option<f64>,
+    /// "ok", "thin" or "over the rating" (`crate::analysis::ratings::Verdict`).
+    pub dissipation_state: String,
+    pub plate_volts_over_rating: bool,
+    /// The load in words, as `breakdown parts` prints it.
+    pub idle: String,
+    /// The ratings and the verdict in words, as `breakdown parts` prints them.
+    pub rating: String,
+}
+
+impl PreampParts {
+    /// The preamp of `circuit` at the idle operating point `idle` (an engine's readout right after `Engine::new`).
+    pub fn new(
+        variants: Vec<String>,
+        circuit: &breakdown_dsp::Circuit,
+        idle: &breakdown_dsp::Readout,
+    ) -> PreampParts {
+        use crate::analysis::partslist::{stage_parts, valve_lines};
+        PreampParts {
+            variants,
+            stages: stage_parts(circuit)
+                .into_iter()
+                .map(|p| StagePartInfo {
+                    stage: p.stage,
+                    key: p.key.clone(),
+                    item: p.item(),
+                    amount: p.amount,
+                    unit: p.unit.into(),
+                    value: p.value(),
+                })
+                .collect(),
+            valves: valve_lines(circuit, idle)
+                .into_iter()
+                .map(|v| {
+                    let r = &v.rating;
+                    ValveInfo {
+                        item: v.item(),
+                        idle: v.idle_text(),
+                        rating: v.rating_text(),
+                        name: v.name.clone(),
+                        tube: r.tube.into(),
+                        idle_plate_volts: r.plate_volts,
+                        idle_plate_watts: r.plate_watts,
+                        rating_plate_volts: r.limits.plate_volts,
+                        rating_plate_watts: r.limits.plate_watts,
+                        dissipation_margin: r.watts_margin.is_finite().then_some(r.watts_margin),
+                        dissipation_state: r.watts_verdict().label().into(),
+                        plate_volts_over_rating: r.volts_over(),
+                    }
+                })
+                .collect(),
+        }
+    }
 }
 
 /// How the THD readout is taken.
