@@ -308,7 +308,7 @@ fn read_float_wav(path: &Path) -> (Vec<Vec<f32>>, u32) {
     (channels, spec.sample_rate)
 }
 
-/// The value of `key="..."` in the first tag that has it, from `from` on.
+/// The value of the first `key="..."` in `xml`.
 fn attr<'x>(xml: &'x str, key: &str) -> Option<&'x str> {
     let pat = format!(" {key}=\"");
     let at = xml.find(&pat)? + pat.len();
@@ -329,7 +329,7 @@ fn add_region(xml: &str, file: &str, samples: usize, range: usize) -> Result<Str
     let rate: u64 = attr(xml, "sample-rate")
         .and_then(|v| v.parse().ok())
         .ok_or("no sample-rate on <Session>")?;
-    if per_second % rate != 0 {
+    if !per_second.is_multiple_of(rate) {
         return Err(format!(
             "{per_second} superclocks per second is no whole number per sample at {rate} Hz"
         ));
@@ -398,8 +398,9 @@ fn render_in_ardour(tools: &Tools, case: &Case, input: &[f32]) -> Rendered {
     let _one_at_a_time = ARDOUR.lock().unwrap_or_else(|e| e.into_inner());
     let work = TempDir::new(case.name);
     let home = private_home(tools, &work.0, case.plugin);
-    // The session folder must carry the session's name: Ardour keeps its audio in interchange/<folder name>
-    // and, finding them differ, asks its editor what to do, which a headless tool waits on forever.
+    // The session folder must carry the session's name: Ardour keeps a session's audio in
+    // interchange/<folder name>, and with the two different Ardour 7.3's export tool (seen here) tried to open
+    // the interchange folder in a file browser and then waited forever.
     let name = "breakdown";
     let dir = work.0.join(name);
 
