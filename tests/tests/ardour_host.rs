@@ -27,8 +27,8 @@ mod plugin_host;
 
 use breakdown_dsp::{Circuit, Quality};
 use plugin_host::{
-    di_signal, ensure_bundles, max_diff, peak, reference_render, reference_render_on,
-    workspace_root, PluginSettings,
+    di_signal, ensure_bundles, max_diff, peak, reference_chain_render, reference_render,
+    reference_render_on, workspace_root, PluginSettings,
 };
 use std::path::{Path, PathBuf};
 use std::process::{Command, Output};
@@ -642,7 +642,8 @@ fn with_circuit_in_state(xml: &str, circuit: &str) -> Result<String, String> {
 /// The parameter assignments for `s` in Ardour's terms: Ardour shows a VST3 parameter in the plugin's own
 /// plain units (it converts with the plugin's normalizedParamToPlain), so the pots take their rotation, the
 /// switch its position, and the choice lists their index (quality 1x..16x = 0..4; cabinet built-in, loaded,
-/// none = 0, 1, 2). The cabinet is off: the model's listening output is the tone stack's output.
+/// none = 0, 1, 2). The cabinet is off (`CABINET_NONE`): the model's listening output is the tone stack's
+/// output.
 fn ardour_params(s: &PluginSettings) -> Vec<(&'static str, f64)> {
     let quality = match s.quality {
         Quality::X1 => 0.0,
@@ -657,9 +658,13 @@ fn ardour_params(s: &PluginSettings) -> Vec<(&'static str, f64)> {
         ("Switch position", s.position as f64),
         ("Quality", quality),
         ("Volts at full scale", s.volts_at_full_scale),
-        ("Cabinet", 2.0),
+        ("Cabinet", CABINET_NONE),
     ]
 }
+
+/// The `cabinet` choice list's indices (plugin/src/params.rs `CabinetChoice`: built-in, loaded IR, none).
+const CABINET_BUILTIN: f64 = 0.0;
+const CABINET_NONE: f64 = 2.0;
 
 /// The export against the model: the plugin's reported latency equals the model's, and master channel 1,
 /// aligned (Ardour compensates the reported latency, so the export should line up with the input; the
@@ -782,12 +787,47 @@ fn ardour_exports_the_vst3_like_the_model() {
             circuit: None,
         };
         let r = render_in_ardour(&tools, &case, &input);
+        check_assignments(name, &r, &case.params);
         eprintln!(
             "{name}: Ardour's view of the plugin:\n{}",
             param_lines(&r.report)
         );
         check_against_model(name, &r, &reference, model_latency);
     }
+}
+
+/// The plugin's default listening chain, the built-in cabinet after the tone stack, in Ardour: the export
+/// equals the model's listening output through the dsp crate's built-in cabinet.
+#[test]
+fn ardour_plays_the_default_chain_with_the_built_in_cabinet() {
+    let Some(tools) = tools_or_skip("ardour_plays_the_default_chain_with_the_built_in_cabinet")
+    else {
+        return;
+    };
+    ensure_bundles();
+    let rate = 48_000u32;
+    let settings = PluginSettings::default();
+    let input = di_signal(rate as f64, 0.3, 0.7);
+    let (reference, model_latency) = reference_chain_render(rate as f64, settings, &input);
+    let mut params = ardour_params(&settings);
+    for p in params.iter_mut().filter(|p| p.0 == "Cabinet") {
+        p.1 = CABINET_BUILTIN;
+    }
+    let case = Case {
+        name: "chain",
+        rate,
+        params,
+        plugin: true,
+        circuit: None,
+    };
+    let r = render_in_ardour(&tools, &case, &input);
+    check_assignments("default chain", &r, &case.params);
+    check_against_model(
+        "default chain with the built-in cabinet",
+        &r,
+        &reference,
+        model_latency,
+    );
 }
 
 /// A circuit loaded through the plugin's state in the session file (presets-demo/one-stage.toml, the one-stage
@@ -824,12 +864,41 @@ fn ardour_plays_a_circuit_loaded_through_the_plugin_state() {
         circuit: Some(&text),
     };
     let r = render_in_ardour(&tools, &case, &input);
+    check_assignments("one-stage circuit", &r, &case.params);
     check_against_model(
         "one-stage circuit from the state",
         &r,
         &reference,
         model_latency,
     );
+}
+
+/// Ardour's view of each assigned control after the assignments (the script's `param` lines) holds the value
+/// asked for, within the 32-bit rounding of the plugin's own parameter (IEEE 754 single precision, relative
+/// 2^-23, a few ulps allowed for the plain/normalised round trip).
+fn check_assignments(what: &str, r: &Rendered, params: &[(&str, f64)]) {
+    for (label, want) in params {
+        let line = r
+            .report
+            .lines()
+            .find(|l| {
+                l.starts_with("param ")
+                    && l.split_once(' ')
+                        .and_then(|(_, rest)| rest.split_once(' '))
+                        .is_some_and(|(_, rest)| rest.starts_with(&format!("{label} lower=")))
+            })
+            .unwrap_or_else(|| {
+                panic!("{what}: Ardour reports no control {label:?}:\n{}", r.report)
+            });
+        let got: f64 = line
+            .rsplit_once("value=")
+            .and_then(|(_, v)| v.trim().parse().ok())
+            .unwrap_or_else(|| panic!("{what}: no value in {line:?}"));
+        assert!(
+            (got - want).abs() <= 8.0 * f32::EPSILON as f64 * want.abs().max(1.0),
+            "{what}: Ardour holds {label} = {got}, asked for {want}"
+        );
+    }
 }
 
 /// The script's `param` lines (Ardour's view of every control after the assignments).
