@@ -1,14 +1,14 @@
 #!/usr/bin/env bash
 # Breakdown's whole test suite on a fresh Debian machine with Rust: installs the system packages the tests use
-# (ngspice for the cross-check, Chromium for the report test, the plugin's X11/OpenGL/audio headers, Python's
-# pedalboard as a general-purpose VST3 host), then checks formatting and lints (warnings
+# (ngspice for the cross-check, Chromium for the report test, the plugin's X11/OpenGL/audio headers, Ardour 7 and
+# Python's pedalboard as two real VST3 hosts), then checks formatting and lints (warnings
 # denied), runs every test of the workspace in release mode and a short smoke run of the benchmark, printing the
 # time of each part.
 set -euo pipefail
 cd "$(dirname "$0")/.."
 
-packages=(ngspice chromium pkg-config libx11-dev libx11-xcb-dev libxcb1-dev libxcb-icccm4-dev libxcb-dri2-0-dev
-  libxcursor-dev libxrandr-dev libgl1-mesa-dev libglu1-mesa-dev libasound2-dev libjack-jackd2-dev)
+packages=(ngspice chromium ardour pkg-config libx11-dev libx11-xcb-dev libxcb1-dev libxcb-icccm4-dev
+  libxcb-dri2-0-dev libxcursor-dev libxrandr-dev libgl1-mesa-dev libglu1-mesa-dev libasound2-dev libjack-jackd2-dev)
 missing=()
 for p in "${packages[@]}"; do
   dpkg-query -W -f='${Status}' "$p" 2>/dev/null | grep -q "install ok installed" || missing+=("$p")
