@@ -488,48 +488,18 @@ fn render_in_ardour(tools: &Tools, case: &Case, input: &[f32]) -> Rendered {
     }
 }
 
-/// RFC 4648 section 4 base64 alphabet (with `=` padding), as Ardour writes a plugin's state into the session.
-const BASE64: &[u8; 64] = b"ABCDEFGHIJKLMNOPQRSTUVWXYZabcdefghijklmnopqrstuvwxyz0123456789+/";
-
+/// Ardour writes a plugin's state into the session as RFC 4648 base64 (standard alphabet, `=` padding).
 fn base64_encode(data: &[u8]) -> String {
-    let mut out = String::with_capacity(data.len().div_ceil(3) * 4);
-    for chunk in data.chunks(3) {
-        let b = [
-            chunk[0],
-            *chunk.get(1).unwrap_or(&0),
-            *chunk.get(2).unwrap_or(&0),
-        ];
-        let n = (b[0] as u32) << 16 | (b[1] as u32) << 8 | b[2] as u32;
-        for k in 0..4 {
-            if k <= chunk.len() {
-                out.push(BASE64[(n >> (18 - 6 * k)) as usize & 63] as char);
-            } else {
-                out.push('=');
-            }
-        }
-    }
-    out
+    use base64::Engine as _;
+    base64::engine::general_purpose::STANDARD.encode(data)
 }
 
 fn base64_decode(text: &str) -> Result<Vec<u8>, String> {
-    let mut out = Vec::with_capacity(text.len() / 4 * 3);
-    let (mut acc, mut bits) = (0u32, 0u32);
-    for c in text.bytes().filter(|c| !c.is_ascii_whitespace()) {
-        if c == b'=' {
-            break;
-        }
-        let v = BASE64
-            .iter()
-            .position(|&a| a == c)
-            .ok_or_else(|| format!("byte {c:#x} is not base64"))? as u32;
-        acc = acc << 6 | v;
-        bits += 6;
-        if bits >= 8 {
-            bits -= 8;
-            out.push((acc >> bits) as u8);
-        }
-    }
-    Ok(out)
+    use base64::Engine as _;
+    let compact: String = text.chars().filter(|c| !c.is_ascii_whitespace()).collect();
+    base64::engine::general_purpose::STANDARD
+        .decode(compact)
+        .map_err(|e| format!("the saved plugin state is not base64: {e}"))
 }
 
 fn le_i64(b: &[u8], at: usize) -> Result<i64, String> {
