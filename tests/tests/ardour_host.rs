@@ -28,7 +28,7 @@ mod plugin_host;
 use breakdown_dsp::{Circuit, Quality};
 use plugin_host::{
     di_signal, ensure_bundles, max_diff, peak, reference_chain_render, reference_render,
-    reference_render_on, workspace_root, PluginSettings,
+    reference_render_on, workspace_root, write_wav, PluginSettings,
 };
 use std::path::{Path, PathBuf};
 use std::process::{Command, Output};
@@ -273,21 +273,6 @@ struct Rendered {
     rate: u32,
     /// The session's folder, kept until the checks are done (and kept for a look when they fail).
     _work: TempDir,
-}
-
-/// Write a mono 32-bit float WAV.
-fn write_wav(path: &Path, rate: u32, x: &[f32]) {
-    let spec = hound::WavSpec {
-        channels: 1,
-        sample_rate: rate,
-        bits_per_sample: 32,
-        sample_format: hound::SampleFormat::Float,
-    };
-    let mut w = hound::WavWriter::create(path, spec).expect("create wav");
-    for &s in x {
-        w.write_sample(s).unwrap();
-    }
-    w.finalize().unwrap();
 }
 
 /// The channels of a 32-bit float WAV and its rate.

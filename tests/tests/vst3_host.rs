@@ -9,7 +9,7 @@ mod plugin_host;
 
 use breakdown_dsp::Quality;
 use plugin_host::{
-    c_text, di_signal, ensure_bundles, max_diff, peak, reference_render, PluginSettings,
+    c_text, di_signal, ensure_bundles, max_diff, peak, reference_render, write_wav, PluginSettings,
 };
 use std::ffi::{c_char, c_void};
 use std::path::Path;
@@ -196,20 +196,6 @@ fn pedalboard_available() -> Result<(), String> {
         )),
         Err(e) => Err(format!("python3 not runnable: {e}")),
     }
-}
-
-fn write_wav(path: &Path, rate: u32, x: &[f32]) {
-    let spec = hound::WavSpec {
-        channels: 1,
-        sample_rate: rate,
-        bits_per_sample: 32,
-        sample_format: hound::SampleFormat::Float,
-    };
-    let mut w = hound::WavWriter::create(path, spec).expect("create wav");
-    for &s in x {
-        w.write_sample(s).unwrap();
-    }
-    w.finalize().unwrap();
 }
 
 /// Channels of a WAV as f32.

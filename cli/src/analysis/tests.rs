@@ -15,13 +15,18 @@ use breakdown_dsp::parts::FAMILY_1N47XXA;
 use breakdown_dsp::{Circuit, Engine, Probe, Quality, Settings};
 
 fn rig(position: usize, gain: f64, quality: Quality) -> Rig {
+    rig_on(Circuit::one_stage(), position, gain, quality)
+}
+
+/// `circuit` at `gain`, level half way, switch `position`.
+fn rig_on(circuit: Circuit, position: usize, gain: f64, quality: Quality) -> Rig {
     let settings = Settings {
         gain,
         level: 0.5,
         position,
         ..Default::default()
     };
-    Rig::new(Circuit::one_stage(), settings, quality).unwrap()
+    Rig::new(circuit, settings, quality).unwrap()
 }
 
 /// What a direct per-sample render at 1x says about each element, read from the valves' own readouts
@@ -547,13 +552,7 @@ fn before_valve_suggestion_clamps_before_any_valve_limits() {
 }
 
 fn preamp_rig(position: usize, gain: f64, quality: Quality) -> Rig {
-    let settings = Settings {
-        gain,
-        level: 0.5,
-        position,
-        ..Default::default()
-    };
-    Rig::new(Circuit::builtin(), settings, quality).unwrap()
+    rig_on(Circuit::builtin(), position, gain, quality)
 }
 
 #[test]

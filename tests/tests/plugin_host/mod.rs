@@ -1,4 +1,4 @@
-//! Shared by the host-level plugin tests (`clap_host.rs`, `vst3_host.rs`, `soak.rs`): find or build the plugin
+//! Shared by the host-level plugin tests (`clap_host.rs`, `vst3_host.rs`, `ardour_host.rs`): find or build the plugin
 //! bundles, a DI-like test signal, and the `breakdown-dsp` rendering the plugin's output must equal (on the
 //! built-in circuit, the plugin's default, or on any circuit a test loads into the plugin).
 
@@ -10,6 +10,21 @@ use std::path::{Path, PathBuf};
 use std::process::Command;
 use std::sync::Mutex;
 use std::time::SystemTime;
+
+/// Write a mono 32-bit float WAV (the DI files the hosts play).
+pub fn write_wav(path: &Path, rate: u32, x: &[f32]) {
+    let spec = hound::WavSpec {
+        channels: 1,
+        sample_rate: rate,
+        bits_per_sample: 32,
+        sample_format: hound::SampleFormat::Float,
+    };
+    let mut w = hound::WavWriter::create(path, spec).expect("create wav");
+    for &s in x {
+        w.write_sample(s).unwrap();
+    }
+    w.finalize().unwrap();
+}
 
 /// Workspace root (the parent of this crate).
 pub fn workspace_root() -> PathBuf {
