@@ -51,6 +51,7 @@ pub struct Condensation {
     /// per capacitor, (row, weight) pairs (`Columns`).
     cap_to_kept: Columns,
     cap_to_linear: Columns,
+    recovery: Recovery,
     /// The kept nodes' and the clusters' given currents from the rails, and per volt at the jack.
     rails_kept: Vec<f64>,
     rails_linear: Vec<f64>,
@@ -58,12 +59,24 @@ pub struct Condensation {
     jack_linear: Vec<f64>,
 }
 
-/// A sparse matrix by columns: column k's (row, weight) pairs are `rows[start[k]..start[k + 1]]`.
+/// A sparse matrix by columns: column k's (row, weight) pairs are `rows[start[k]..start[k + 1]]`; `cols` repeats
+/// each entry's column, so a product can run over the entries in one flat loop.
 #[derive(Clone, Debug, Default)]
 struct Columns {
     start: Vec<usize>,
     rows: Vec<usize>,
+    cols: Vec<usize>,
     weights: Vec<f64>,
+}
+
+/// `recover` as one flat list: linear node `a` (over all clusters) is `base[a] - sum weight * volts[from]` over
+/// its terms `start[a]..start[a + 1]`, written to `volts[slot[a]]`. Weights are negated, sized at set-up.
+#[derive(Clone, Debug, Default)]
+struct Recovery {
+    slot: Vec<usize>,
+    start: Vec<usize>,
+    from: Vec<usize>,
+    weight: Vec<f64>,
 }
 
 impl Condensation {
@@ -157,6 +170,7 @@ impl Condensation {
             caps: caps.to_vec(),
             cap_to_kept: Columns::default(),
             cap_to_linear: Columns::default(),
+            recovery: Recovery::default(),
             rails_kept: Vec::new(),
             rails_linear: vec![0.0; linear_count],
             jack_kept: Vec::new(),
@@ -169,7 +183,7 @@ impl Condensation {
         let cluster_of = |node: usize, clusters: &[Cluster]| {
             clusters.iter().position(|c| c.nodes.contains(&node))
         };
-        for cap in caps {
+        for (index, cap) in caps.iter().enumerate() {
             c.cap_to_kept.start.push(c.cap_to_kept.rows.len());
             c.cap_to_linear.start.push(c.cap_to_linear.rows.len());
             let mut kept_rows: Vec<usize> = Vec::new();
@@ -188,14 +202,29 @@ impl Condensation {
             linear_rows.sort_unstable();
             linear_rows.dedup();
             c.cap_to_kept.weights.extend(kept_rows.iter().map(|_| 0.0));
+            c.cap_to_kept.cols.extend(kept_rows.iter().map(|_| index));
             c.cap_to_kept.rows.extend(kept_rows);
             c.cap_to_linear
                 .weights
                 .extend(linear_rows.iter().map(|_| 0.0));
+            c.cap_to_linear
+                .cols
+                .extend(linear_rows.iter().map(|_| index));
             c.cap_to_linear.rows.extend(linear_rows);
         }
         c.cap_to_kept.start.push(c.cap_to_kept.rows.len());
         c.cap_to_linear.start.push(c.cap_to_linear.rows.len());
+        // The recovery's shape: every linear node reads every neighbour of its cluster.
+        let r = &mut c.recovery;
+        for cl in &c.clusters {
+            for _ in &cl.nodes {
+                r.start.push(r.from.len());
+                r.slot.push(0);
+                r.from.extend(cl.neighbours.iter().map(|_| 0));
+            }
+        }
+        r.start.push(r.from.len());
+        r.weight = vec![0.0; r.from.len()];
         c
     }
 
@@ -251,6 +280,7 @@ impl Condensation {
                         sum += c.inverse[a * k + b] * g[c.nodes[b] * n + j];
                     }
                     c.recover[a * nb + q] = sum;
+                    self.recovery.weight[self.recovery.start[c.offset + a] + q] = -sum;
                 }
             }
             for (p, &i) in c.neighbours.iter().enumerate() {
@@ -349,20 +379,9 @@ impl Condensation {
         {
             *out = L::splat(*per_volt).madd(jack, L::splat(*rail));
         }
-        for (k, h) in history.iter().enumerate() {
-            let (from, to) = (self.cap_to_kept.start[k], self.cap_to_kept.start[k + 1]);
-            for (r, w) in self.cap_to_kept.rows[from..to]
-                .iter()
-                .zip(&self.cap_to_kept.weights[from..to])
-            {
-                kept[*r] = L::splat(*w).madd(*h, kept[*r]);
-            }
-            let (from, to) = (self.cap_to_linear.start[k], self.cap_to_linear.start[k + 1]);
-            for (r, w) in self.cap_to_linear.rows[from..to]
-                .iter()
-                .zip(&self.cap_to_linear.weights[from..to])
-            {
-                linear[*r] = L::splat(*w).madd(*h, linear[*r]);
+        for (out, columns) in [(kept, &self.cap_to_kept), (linear, &self.cap_to_linear)] {
+            for ((r, k), w) in columns.rows.iter().zip(&columns.cols).zip(&columns.weights) {
+                out[*r] = L::splat(*w).madd(history[*k], out[*r]);
             }
         }
     }
@@ -399,6 +418,12 @@ impl Condensation {
         for c in self.clusters.iter_mut() {
             c.node_slots = c.nodes.iter().map(|&i| slots[i]).collect();
             c.neighbour_slots = c.neighbours.iter().map(|&i| slots[i]).collect();
+            for (a, &slot) in c.node_slots.iter().enumerate() {
+                let at = self.recovery.start[c.offset + a];
+                self.recovery.slot[c.offset + a] = slot;
+                self.recovery.from[at..at + c.neighbour_slots.len()]
+                    .copy_from_slice(&c.neighbour_slots);
+            }
         }
     }
 
@@ -406,15 +431,16 @@ impl Condensation {
     /// `given`, in the slots `set_slots` gave.
     #[inline(always)]
     pub fn recover<L: Lane>(&self, scratch: &[L], volts: &mut [L]) {
-        for c in &self.clusters {
-            let nb = c.neighbours.len();
-            for (a, &slot) in c.node_slots.iter().enumerate() {
-                let mut v = scratch[c.offset + a];
-                for (q, &from) in c.neighbour_slots.iter().enumerate() {
-                    v = (-L::splat(c.recover[a * nb + q])).madd(volts[from], v);
-                }
-                volts[slot] = v;
+        let r = &self.recovery;
+        for ((&slot, base), span) in r.slot.iter().zip(scratch).zip(r.start.windows(2)) {
+            let mut v = *base;
+            for (&from, &w) in r.from[span[0]..span[1]]
+                .iter()
+                .zip(&r.weight[span[0]..span[1]])
+            {
+                v = L::splat(w).madd(volts[from], v);
             }
+            volts[slot] = v;
         }
     }
 }

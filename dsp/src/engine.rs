@@ -821,17 +821,15 @@ impl<L: Lane> Engine<L> {
     /// decimated (the others unspecified), not yet checked for finiteness.
     #[inline(always)]
     fn advance(&mut self, inputs: &[f32]) {
-        let mut volts = L::splat(0.0);
-        for lane in 0..L::WIDTH {
+        let mut lanes = [0.0; MAX_LANES];
+        for (lane, v) in lanes.iter_mut().enumerate().take(L::WIDTH) {
             let mut x = inputs.get(lane).map_or(0.0, |&x| x as f64);
             if !x.is_finite() {
                 x = 0.0;
             }
-            volts.set(
-                lane,
-                (x * self.input_volts_per_unit).clamp(-INPUT_LIMIT_VOLTS, INPUT_LIMIT_VOLTS),
-            );
+            *v = (x * self.input_volts_per_unit).clamp(-INPUT_LIMIT_VOLTS, INPUT_LIMIT_VOLTS);
         }
+        let volts = L::from_lanes(lanes);
         self.glide_knobs();
         if self.quality == Quality::X1 {
             self.step_model(volts);
@@ -841,16 +839,15 @@ impl<L: Lane> Engine<L> {
             return;
         }
         let factor = self.quality.factor();
-        for lane in 0..L::WIDTH {
-            let (up, high) = (&mut self.up[lane], &mut self.high_in[lane]);
-            up.process(volts.get(lane), &mut high[..factor]);
+        for ((up, high), v) in self.up.iter_mut().zip(self.high_in.iter_mut()).zip(lanes) {
+            up.process(v, &mut high[..factor]);
         }
         for k in 0..factor {
-            let mut v = L::splat(0.0);
-            for lane in 0..L::WIDTH {
-                v.set(lane, self.high_in[lane][k]);
+            let mut v = [0.0; MAX_LANES];
+            for (lane, v) in v.iter_mut().enumerate().take(L::WIDTH) {
+                *v = self.high_in[lane][k];
             }
-            self.step_model(v);
+            self.step_model(L::from_lanes(v));
             for lane in 0..L::WIDTH {
                 let values = self.slot_values(lane);
                 for (row, v) in self.high_out[lane].iter_mut().zip(values) {
@@ -873,26 +870,29 @@ impl<L: Lane> Engine<L> {
     fn step_model(&mut self, jack_volts: L) {
         self.model.process(jack_volts);
         let m = &self.model;
+        let clamp = m.node_volts(self.nodes.clamp).to_lanes();
+        let current = m.pair_state().current.to_lanes();
         for lane in 0..L::WIDTH {
             let (positive, negative) = m.part_volts(lane);
             let r = SampleReadout {
-                clamp_volts: m.node_volts(self.nodes.clamp).get(lane),
-                zener_current: m.pair_state().current.get(lane),
+                clamp_volts: clamp[lane],
+                zener_current: current[lane],
                 positive_part_volts: positive,
                 negative_part_volts: negative,
             };
-            let meters = &mut self.meters[lane];
-            meters.record(&r, m.report());
-            for k in 0..meters.valve_count {
-                let [plate, _, cathode] = m.valve_terminal_volts(k);
-                let e = m.valve(k);
-                let (plate, cathode) = (plate.get(lane), cathode.get(lane));
+            self.meters[lane].record(&r, m.report());
+        }
+        for k in 0..self.meters[0].valve_count {
+            let [plate, _, cathode] = m.valve_terminal_volts(k).map(Lane::to_lanes);
+            let e = m.valve(k);
+            let (plate_current, grid_current) = (e.plate.to_lanes(), e.grid.to_lanes());
+            for (lane, meters) in self.meters.iter_mut().enumerate() {
                 meters.record_valve(
                     k,
-                    plate,
-                    plate - cathode,
-                    e.plate.get(lane),
-                    e.grid.get(lane),
+                    plate[lane],
+                    plate[lane] - cathode[lane],
+                    plate_current[lane],
+                    grid_current[lane],
                 );
             }
         }

@@ -7,6 +7,9 @@
 use std::fmt::Debug;
 use std::ops::{Add, AddAssign, Div, Mul, MulAssign, Neg, Sub, SubAssign};
 
+/// The widest lane type's `WIDTH`.
+pub const MAX_WIDTH: usize = 4;
+
 /// One value per model, with the arithmetic the solver needs.
 pub trait Lane:
     Copy
@@ -34,6 +37,10 @@ pub trait Lane:
     fn get(self, index: usize) -> f64;
     /// Set the value of model `index`.
     fn set(&mut self, index: usize, value: f64);
+    /// Every model's value, in the first `WIDTH` slots (the rest zero).
+    fn to_lanes(self) -> [f64; MAX_WIDTH];
+    /// The models' values from the first `WIDTH` slots.
+    fn from_lanes(values: [f64; MAX_WIDTH]) -> Self;
     /// a b + c.
     fn madd(self, b: Self, c: Self) -> Self;
     fn abs(self) -> Self;
@@ -93,6 +100,14 @@ impl Lane for f64 {
     #[inline(always)]
     fn set(&mut self, _index: usize, value: f64) {
         *self = value;
+    }
+    #[inline(always)]
+    fn to_lanes(self) -> [f64; MAX_WIDTH] {
+        [self, 0.0, 0.0, 0.0]
+    }
+    #[inline(always)]
+    fn from_lanes(values: [f64; MAX_WIDTH]) -> Self {
+        values[0]
     }
     #[inline(always)]
     fn madd(self, b: Self, c: Self) -> Self {

@@ -29,7 +29,7 @@ use crate::condense::Condensation;
 use crate::devices::triode::{Triode, TriodeCurrents};
 use crate::devices::zener::{PairPoint, ZenerPair};
 use crate::elements::{Knob, Stamper, Terminal};
-use crate::lane::Lane;
+use crate::lane::{Lane, MAX_WIDTH};
 use crate::netlist::Netlist;
 
 /// Newton iterations allowed per sample before the restart from the last solution.
@@ -748,29 +748,36 @@ impl<L: Lane> Nodal<L> {
     fn evaluate(&mut self, x: &[L], keep: L::Mask) {
         let half = self.shape.half;
         self.volts[half..half + x.len()].copy_from_slice(x);
-        let s = x[self.pair_unknown];
-        let mut pair = PairEval::<L>::default();
+        // Each lane's devices are evaluated from plain arrays, the results packed once per quantity.
+        let s = x[self.pair_unknown].to_lanes();
+        let mut pair = [[0.0; MAX_WIDTH]; 6];
         for lane in 0..L::WIDTH {
             let p = &self.pairs[self.active[lane]];
             let point = if p.is_open() {
                 // No parts: the unknown is the open node's voltage and no current flows.
                 PairPoint {
-                    volts: s.get(lane),
+                    volts: s[lane],
                     volts_ds: 1.0,
                     ..Default::default()
                 }
             } else {
-                p.port(s.get(lane))
+                p.port(s[lane])
             };
-            pair.volts.set(lane, point.volts);
-            pair.volts_ds.set(lane, point.volts_ds);
-            pair.current.set(lane, point.current);
-            pair.current_ds.set(lane, point.current_ds);
-            pair.negative_part_volts
-                .set(lane, point.negative_part_volts);
-            pair.negative_part_volts_ds
-                .set(lane, point.negative_part_volts_ds);
+            pair[0][lane] = point.volts;
+            pair[1][lane] = point.volts_ds;
+            pair[2][lane] = point.current;
+            pair[3][lane] = point.current_ds;
+            pair[4][lane] = point.negative_part_volts;
+            pair[5][lane] = point.negative_part_volts_ds;
         }
+        let pair = PairEval {
+            volts: L::from_lanes(pair[0]),
+            volts_ds: L::from_lanes(pair[1]),
+            current: L::from_lanes(pair[2]),
+            current_ds: L::from_lanes(pair[3]),
+            negative_part_volts: L::from_lanes(pair[4]),
+            negative_part_volts_ds: L::from_lanes(pair[5]),
+        };
         self.pair_eval = if L::any(keep) {
             PairEval::select(keep, &self.pair_eval, &pair)
         } else {
@@ -779,16 +786,23 @@ impl<L: Lane> Nodal<L> {
         self.volts[half + self.pair_unknown] = self.pair_eval.volts;
         for (slot, out) in self.valves.iter().zip(self.valve_eval.iter_mut()) {
             let [vp, vg, vk] = slot.volts_at.map(|i| self.volts[i]);
-            let (vpk, vgk) = (vp - vk, vg - vk);
-            let mut e = ValveEval::<L>::default();
+            let (vpk, vgk) = ((vp - vk).to_lanes(), (vg - vk).to_lanes());
+            let mut c = [[0.0; MAX_WIDTH]; 5];
             for lane in 0..L::WIDTH {
-                let c: TriodeCurrents = slot.model.currents(vpk.get(lane), vgk.get(lane));
-                e.plate.set(lane, c.plate);
-                e.grid.set(lane, c.grid);
-                e.plate_dvpk.set(lane, c.plate_dvpk);
-                e.plate_dvgk.set(lane, c.plate_dvgk);
-                e.grid_dvgk.set(lane, c.grid_dvgk);
+                let t: TriodeCurrents = slot.model.currents(vpk[lane], vgk[lane]);
+                c[0][lane] = t.plate;
+                c[1][lane] = t.grid;
+                c[2][lane] = t.plate_dvpk;
+                c[3][lane] = t.plate_dvgk;
+                c[4][lane] = t.grid_dvgk;
             }
+            let e = ValveEval {
+                plate: L::from_lanes(c[0]),
+                grid: L::from_lanes(c[1]),
+                plate_dvpk: L::from_lanes(c[2]),
+                plate_dvgk: L::from_lanes(c[3]),
+                grid_dvgk: L::from_lanes(c[4]),
+            };
             *out = if L::any(keep) {
                 ValveEval::select(keep, out, &e)
             } else {
@@ -933,14 +947,8 @@ impl<L: Lane> Nodal<L> {
         self.newton_step::<W>();
         let mut done = keep;
         let mut iterations = 1;
-        for (limit, full) in self.damping.limit.iter_mut().zip(&self.port_limit) {
-            *limit = L::splat(*full);
-        }
-        self.damping
-            .last_step
-            .iter_mut()
-            .for_each(|s| *s = L::default());
-        self.damping.last_limited.iter_mut().for_each(|m| *m = no);
+        // The damping state is set up on the first damped step (most samples need none).
+        let mut damping_ready = false;
         loop {
             self.port_changes();
             // Within tolerance on every port: take the step and carry the currents through it.
@@ -965,6 +973,17 @@ impl<L: Lane> Nodal<L> {
             }
             // Otherwise a damped step: when a port that hit its limit then steps the other way its limit
             // halves, so a Newton 2-cycle closes in as bisection would; else the limit grows back to full.
+            if !damping_ready {
+                for (limit, full) in self.damping.limit.iter_mut().zip(&self.port_limit) {
+                    *limit = L::splat(*full);
+                }
+                self.damping
+                    .last_step
+                    .iter_mut()
+                    .for_each(|s| *s = L::default());
+                self.damping.last_limited.iter_mut().for_each(|m| *m = no);
+                damping_ready = true;
+            }
             let mut scale = L::splat(1.0);
             let d = &mut self.damping;
             for n in 0..self.ports.len() {

@@ -16,7 +16,8 @@ use crate::shared::{Shared, SLOTS};
 use atomic_float::AtomicF64;
 use breakdown_dsp::cabinet::Cabinet;
 use breakdown_dsp::circuit::{SwitchPosition, ZenerSpec};
-use breakdown_dsp::engine::CLAMPED_CURRENT;
+use breakdown_dsp::engine::{Meters, CLAMPED_CURRENT};
+use breakdown_dsp::lanes::f64x2;
 use breakdown_dsp::smoothing::Glide;
 use breakdown_dsp::units::{db_to_gain, gain_to_db};
 use breakdown_dsp::Knob;
@@ -217,11 +218,30 @@ pub struct PartsInfo {
 // ---------------------------------------------------------------------------------------------------------
 // The model interface
 
-/// The models of one slot: one per input channel, built off the audio thread.
+/// A slot's model: one engine for a mono input; for a stereo input, the two channels as two lanes of one engine
+/// (they share the knobs; each lane has its own input, oversampling and meters), which costs well under two
+/// engines.
+#[derive(Clone)]
+enum Engines {
+    Mono(Engine),
+    Stereo(Engine<f64x2>),
+}
+
+/// Call `$body` with `$e` bound to the slot's engine, whichever lane type it has.
+macro_rules! each_engine {
+    ($engines:expr, $e:ident => $body:expr) => {
+        match $engines {
+            Engines::Mono($e) => $body,
+            Engines::Stereo($e) => $body,
+        }
+    };
+}
+
+/// The models of one slot, built off the audio thread.
 pub struct Models {
     pub spec: SlotSpec,
     pub sample_rate: f64,
-    engines: Vec<Engine>,
+    engines: Engines,
     /// Volts to listening-output units (1 / the circuit's `[listen] volts_at_full_scale`), for the wiper and
     /// clamp-node listening points.
     listen_scale: f64,
@@ -289,15 +309,27 @@ impl Models {
             middle: pots.middle.clamp(0.0, 1.0),
             bass: pots.bass.clamp(0.0, 1.0),
         };
-        let mut engine =
-            Engine::new(&slot, sample_rate, spec.quality, settings).map_err(|e| e.to_string())?;
-        if calibration.is_finite() && calibration > 0.0 {
-            engine.set_input_calibration(calibration);
-        }
-        // The processor reads the listening output, the wiper and the clamp node only: decimate just those.
-        engine.set_active_probes(&[Probe::Listen, Probe::Wiper, Probe::Clamp]);
+        let mut engines = if channels >= 2 {
+            Engines::Stereo(
+                Engine::with_lanes(&slot, sample_rate, spec.quality, settings)
+                    .map_err(|e| e.to_string())?,
+            )
+        } else {
+            Engines::Mono(
+                Engine::new(&slot, sample_rate, spec.quality, settings)
+                    .map_err(|e| e.to_string())?,
+            )
+        };
+        let pair = each_engine!(&mut engines, engine => {
+            if calibration.is_finite() && calibration > 0.0 {
+                engine.set_input_calibration(calibration);
+            }
+            // The processor reads the listening output, the wiper and the clamp node only: decimate just those.
+            engine.set_active_probes(&[Probe::Listen, Probe::Wiper, Probe::Clamp]);
+            engine.model().pair(0).cloned()
+        });
         let position = &slot.clamp.position[0];
-        let (threshold_positive, threshold_negative) = match engine.model().pair(0) {
+        let (threshold_positive, threshold_negative) = match &pair {
             Some(pair) if !pair.is_open() => pair.thresholds_at(CLAMPED_CURRENT),
             _ => (f64::NAN, f64::NAN),
         };
@@ -316,11 +348,6 @@ impl Models {
                     .flatten()
                     .any(|z| z.izt.is_some()),
         };
-        let mut engines = Vec::with_capacity(channels);
-        for _ in 1..channels.max(1) {
-            engines.push(engine.clone());
-        }
-        engines.push(engine);
         Ok(Box::new(Models {
             spec,
             sample_rate,
@@ -332,46 +359,48 @@ impl Models {
     }
 
     pub fn channels(&self) -> usize {
-        self.engines.len()
+        each_engine!(&self.engines, e => e.lanes())
     }
 
     /// Latency in host samples (the oversampling filters).
     pub fn latency(&self) -> u32 {
-        self.engines[0].latency() as u32
+        each_engine!(&self.engines, e => e.latency() as u32)
     }
 
     /// Turn the pots (the model glides them).
     pub fn set_pots(&mut self, pots: &Pots) {
-        for e in self.engines.iter_mut() {
+        each_engine!(&mut self.engines, e => {
             e.set_gain(pots.gain);
             e.set_level(pots.level);
             e.set_knob(Knob::Treble, pots.treble);
             e.set_knob(Knob::Middle, pots.middle);
             e.set_knob(Knob::Bass, pots.bass);
-        }
+        })
     }
 
-    /// One sample of channel `channel`: the listening points' signals and the clamp-node volts.
+    /// One frame of every channel (`inputs[channel]`): per channel, the listening points' signals and the
+    /// clamp-node volts (the second is unused for a mono model).
     #[inline]
-    pub fn process(&mut self, channel: usize, x: f32, calibration: f64) -> Point {
-        let e = &mut self.engines[channel];
-        e.set_input_calibration(calibration);
-        let f = e.process_sample(x);
-        Point {
-            points: [
-                f.listen,
-                f.wiper_volts * self.listen_scale,
-                f.clamp_volts * self.listen_scale,
-            ],
+    pub fn process(&mut self, inputs: &[f32; 2], calibration: f64) -> [Point; 2] {
+        let scale = self.listen_scale;
+        let point = |f: &breakdown_dsp::Frame| Point {
+            points: [f.listen, f.wiper_volts * scale, f.clamp_volts * scale],
             clamp_volts: f.clamp_volts,
-        }
+        };
+        each_engine!(&mut self.engines, e => {
+            e.set_input_calibration(calibration);
+            let frames = e.process_lanes(&inputs[..e.lanes()]);
+            let mut out = [Point::default(); 2];
+            for (o, f) in out.iter_mut().zip(frames) {
+                *o = point(f);
+            }
+            out
+        })
     }
 
     /// Back to the operating point with silent history.
     pub fn reset(&mut self) {
-        for e in self.engines.iter_mut() {
-            e.reset();
-        }
+        each_engine!(&mut self.engines, e => e.reset())
     }
 
     /// The meters since the last call, over the channels (None when nothing was processed); starts a new
@@ -383,8 +412,12 @@ impl Models {
             ..Default::default()
         };
         let (mut clamped, mut samples) = (0u64, 0u64);
-        for e in self.engines.iter_mut() {
-            let m = *e.meters();
+        let lanes: [Option<Meters>; 2] = each_engine!(&mut self.engines, e => {
+            let lanes = std::array::from_fn(|l| (l < e.lanes()).then(|| *e.lane_meters(l)));
+            e.reset_meters();
+            lanes
+        });
+        for m in lanes.into_iter().flatten() {
             if m.samples > 0 {
                 w.clamp_peak_positive = w.clamp_peak_positive.max(m.clamp_peak_positive);
                 w.clamp_peak_negative = w.clamp_peak_negative.min(m.clamp_peak_negative);
@@ -397,7 +430,6 @@ impl Models {
                 w.positive_average_watts = w.positive_average_watts.max(a);
                 w.negative_average_watts = w.negative_average_watts.max(b);
             }
-            e.reset_meters();
         }
         (samples > 0).then(|| MeterWindow {
             share_clamped: clamped as f64 / samples as f64,
@@ -1439,20 +1471,20 @@ impl Processor {
             } else {
                 0.0
             };
-            for (c, &x) in inputs.iter().enumerate().take(self.channels) {
-                let mut p = match slot.current.as_mut() {
-                    Some(m) => m.process(c, x, calibration),
-                    None => Point::default(),
-                };
-                if let Some(next) = slot.next.as_mut() {
-                    let q = next.process(c, x, calibration);
+            let mut out = match slot.current.as_mut() {
+                Some(m) => m.process(inputs, calibration),
+                None => [Point::default(); 2],
+            };
+            if let Some(next) = slot.next.as_mut() {
+                let q = next.process(inputs, calibration);
+                for (p, q) in out.iter_mut().zip(q).take(self.channels) {
                     for (a, b) in p.points.iter_mut().zip(q.points) {
                         *a += (b - *a) * w;
                     }
                     p.clamp_volts += (q.clamp_volts - p.clamp_volts) * w;
                 }
-                slot.out[c] = p;
             }
+            slot.out[..self.channels].copy_from_slice(&out[..self.channels]);
             if slot.next.is_some() {
                 slot.fade += 1;
                 if slot.fade >= self.fade_len {
