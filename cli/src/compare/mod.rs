@@ -20,6 +20,9 @@ use crate::report::{
     ZenerLoad,
 };
 use breakdown_dsp::engine::CLAMPED_CURRENT;
+use breakdown_dsp::engine::MAX_LANES;
+use breakdown_dsp::lane::Lane;
+use breakdown_dsp::lanes::f64x2;
 use breakdown_dsp::oversampling::decimator_memory;
 use breakdown_dsp::parts::FAMILY_1N47XXA;
 use breakdown_dsp::{Circuit, Engine, Meters, Probe};
@@ -354,71 +357,142 @@ fn part_specs(variant: &Variant) -> (Option<f64>, Option<f64>) {
     )
 }
 
+/// Render `channels` (DI channels `first..`, one per lane of `engine`) at the plan's listening point, appending
+/// each channel's output and meters, and the clamp-node scope passage when its channel is among them.
+#[allow(clippy::too_many_arguments)]
+fn render_channels<L: Lane>(
+    s: &Shared,
+    variant: &Variant,
+    mut engine: Engine<L>,
+    channels: &[&[f32]],
+    first: usize,
+    (scope_channel, scope_start, scope_len): (usize, usize, usize),
+    outputs: &mut Vec<Vec<f32>>,
+    meters: &mut Vec<Meters>,
+    scope: &mut Vec<f32>,
+) -> Result<(), String> {
+    let plan = s.plan;
+    let frames = channels.iter().map(|c| c.len()).max().unwrap_or(0);
+    // Only the listening output is read throughout; the clamp node only for the scope passage, so its
+    // decimator runs from `decimator_memory` samples before the passage (its output is then exact) to the
+    // passage's end. The other probes' decimators never run.
+    let latency = engine.latency();
+    let scope_lane = scope_channel
+        .checked_sub(first)
+        .filter(|&l| l < channels.len());
+    let (clamp_on, clamp_off) = if scope_lane.is_some() {
+        let start = scope_start + latency;
+        (
+            (start + 1).saturating_sub(decimator_memory(variant.quality)),
+            start + scope_len,
+        )
+    } else {
+        (usize::MAX, usize::MAX)
+    };
+    let heard = plan.listening.probe();
+    let scale = plan.listening.scale(&variant.circuit);
+    engine.set_active_probes(&[heard]);
+    let _flush = breakdown_dsp::denormals::FlushGuard::new();
+    let mut out: Vec<Vec<f32>> = channels
+        .iter()
+        .map(|_| Vec::with_capacity(frames))
+        .collect();
+    let mut x = [0.0f32; MAX_LANES];
+    for n in 0..frames + latency {
+        if n == clamp_on {
+            engine.set_active_probes(&[heard, Probe::Clamp]);
+        } else if n == clamp_off {
+            engine.set_active_probes(&[heard]);
+        }
+        for (v, c) in x.iter_mut().zip(channels) {
+            *v = c.get(n).copied().unwrap_or(0.0);
+        }
+        let lanes = engine.process_lanes(&x[..L::WIDTH]);
+        if n >= latency {
+            for (o, frame) in out.iter_mut().zip(lanes) {
+                o.push(plan.listening.value(frame, scale) as f32);
+            }
+            let m = n - latency;
+            if let Some(lane) = scope_lane {
+                if m >= scope_start && m < scope_start + scope_len {
+                    scope.push(lanes[lane].clamp_volts as f32);
+                }
+            }
+        }
+        if n % PROGRESS_STEP == PROGRESS_STEP - 1 {
+            s.progress.inc((PROGRESS_STEP * channels.len()) as u64);
+            if s.cancel.load(Ordering::Relaxed) {
+                return Err("cancelled".into());
+            }
+        }
+    }
+    s.progress
+        .inc((((frames + latency) % PROGRESS_STEP) * channels.len()) as u64);
+    for lane in 0..channels.len() {
+        meters.push(*engine.lane_meters(lane));
+    }
+    outputs.extend(out);
+    Ok(())
+}
+
 fn render_job(s: &Shared, di_index: usize, vi: usize) -> Result<DiResult, String> {
     let plan = s.plan;
     let variant = &plan.variants[vi];
     let input = &s.inputs[di_index];
     let entry = &plan.di[di_index];
     let (scope_channel, scope_start, scope_len) = s.scopes[di_index];
-    let frames = input.frames();
     let mut outputs: Vec<Vec<f32>> = Vec::with_capacity(input.channels.len());
     let mut meters = Vec::new();
-    let mut average_watts = (0.0f64, 0.0f64);
     let mut scope = Vec::with_capacity(scope_len);
-    for (c, samples) in input.channels.iter().enumerate() {
-        let mut engine = Engine::new(
+    let scope_at = (scope_channel, scope_start, scope_len);
+    let fail = |e: breakdown_dsp::CircuitError| format!("variant '{}': {e}", variant.name);
+    if input.channels.len() == 2 {
+        // A stereo DI's two channels run as two lanes of one engine (two amps that share the knobs).
+        let engine = Engine::<f64x2>::with_lanes(
             &variant.circuit,
             input.rate as f64,
             variant.quality,
             variant.settings,
         )
-        .map_err(|e| format!("variant '{}': {e}", variant.name))?;
-        // Only the listening output is read throughout; the clamp node only for the scope passage, so its
-        // decimator runs from `decimator_memory` samples before the passage (its output is then exact) to the
-        // passage's end. The other probes' decimators never run.
-        let latency = engine.latency();
-        let (clamp_on, clamp_off) = if c == scope_channel {
-            let first = scope_start + latency;
-            (
-                (first + 1).saturating_sub(decimator_memory(variant.quality)),
-                first + scope_len,
+        .map_err(fail)?;
+        let channels = [&input.channels[0][..], &input.channels[1][..]];
+        render_channels(
+            s,
+            variant,
+            engine,
+            &channels,
+            0,
+            scope_at,
+            &mut outputs,
+            &mut meters,
+            &mut scope,
+        )?;
+    } else {
+        for (c, samples) in input.channels.iter().enumerate() {
+            let engine = Engine::new(
+                &variant.circuit,
+                input.rate as f64,
+                variant.quality,
+                variant.settings,
             )
-        } else {
-            (usize::MAX, usize::MAX)
-        };
-        let heard = plan.listening.probe();
-        let scale = plan.listening.scale(&variant.circuit);
-        engine.set_active_probes(&[heard]);
-        let _flush = breakdown_dsp::denormals::FlushGuard::new();
-        let mut out = Vec::with_capacity(frames);
-        for n in 0..frames + latency {
-            if n == clamp_on {
-                engine.set_active_probes(&[heard, Probe::Clamp]);
-            } else if n == clamp_off {
-                engine.set_active_probes(&[heard]);
-            }
-            let x = samples.get(n).copied().unwrap_or(0.0);
-            let frame = engine.process_sample(x);
-            if n >= latency {
-                out.push(plan.listening.value(frame, scale) as f32);
-                let m = n - latency;
-                if c == scope_channel && m >= scope_start && m < scope_start + scope_len {
-                    scope.push(frame.clamp_volts as f32);
-                }
-            }
-            if n % PROGRESS_STEP == PROGRESS_STEP - 1 {
-                s.progress.inc(PROGRESS_STEP as u64);
-                if s.cancel.load(Ordering::Relaxed) {
-                    return Err("cancelled".into());
-                }
-            }
+            .map_err(fail)?;
+            render_channels(
+                s,
+                variant,
+                engine,
+                &[samples],
+                c,
+                scope_at,
+                &mut outputs,
+                &mut meters,
+                &mut scope,
+            )?;
         }
-        s.progress.inc(((frames + latency) % PROGRESS_STEP) as u64);
-        let m = *engine.meters();
+    }
+    let mut average_watts = (0.0f64, 0.0f64);
+    for m in &meters {
         let (p, q) = m.average_watts();
         average_watts = (average_watts.0.max(p), average_watts.1.max(q));
-        meters.push(m);
-        outputs.push(out);
     }
     let m = combine(&meters);
     // The chain's cabinet over the whole clip (a stereo response makes a mono DI stereo).
