@@ -1,6 +1,7 @@
-//! CPU cost of the plugin's processor on the built-in circuit with instant comparison on (its three switch
-//! positions and the candidate running), at the default quality: prints the share of one core for a mono and
-//! a stereo 48 kHz stream.
+//! CPU cost of the plugin's processor on the built-in circuit at the default quality (4x), 48 kHz: the share of
+//! one core for a mono and a stereo DI with one position running, with the heard and compare-with positions,
+//! and with every position live (the three switch positions and the candidate), and the ratios between them,
+//! all measured in the same run. A stereo DI runs as two lanes of one engine per position.
 //! Run: cargo run --release -p breakdown --example cpu [seconds] [case]
 
 use breakdown::runtime::{Controls, Processor, Worker};
@@ -24,30 +25,29 @@ fn main() {
             (0.5 * (-(t % 1.0) * 2.0).exp() * (2.0 * std::f64::consts::PI * 110.0 * t).sin()) as f32
         })
         .collect();
-    for (label, models, channels, run_all) in [
-        (
-            "mono in, stereo out, 3 positions + candidate running",
-            1,
-            2,
-            true,
-        ),
-        ("stereo, 3 positions + candidate running", 2, 2, true),
-        (
-            "mono in, stereo out, heard + compare-with only",
-            1,
-            2,
-            false,
-        ),
-        ("stereo, heard + compare-with only", 2, 2, false),
-    ]
-    .into_iter()
-    .enumerate()
-    .filter(|(case, _)| only.is_none_or(|k| k == *case))
-    .map(|(_, c)| c)
-    {
+    // (label, input channels, which positions run)
+    let cases = [
+        ("mono DI, one position", 1, Running::One),
+        ("mono DI, heard + compare-with", 1, Running::Two),
+        ("mono DI, every position live", 1, Running::All),
+        ("stereo DI, one position", 2, Running::One),
+        ("stereo DI, heard + compare-with", 2, Running::Two),
+        ("stereo DI, every position live", 2, Running::All),
+    ];
+    let mut share = [f64::NAN; 6];
+    for (case, (label, models, running)) in cases.into_iter().enumerate() {
+        if only.is_some_and(|k| k != case) {
+            continue;
+        }
+        let defaults = Controls::default();
         let controls = Controls {
-            run_all,
-            ..Controls::default()
+            run_all: running == Running::All,
+            compare_with: if running == Running::One {
+                defaults.position
+            } else {
+                defaults.compare_with
+            },
+            ..defaults
         };
         let mut p = Processor::new(
             rate,
@@ -57,7 +57,8 @@ fn main() {
             Arc::new(Shared::default()),
         )
         .expect("processor");
-        let mut bufs = vec![vec![0.0f32; block]; channels];
+        // Stereo out in every case (a mono model feeds both outputs).
+        let mut bufs = vec![vec![0.0f32; block]; 2];
         let start = Instant::now();
         for chunk in input.chunks(block) {
             for b in bufs.iter_mut() {
@@ -68,9 +69,31 @@ fn main() {
             p.process(&controls, &mut slices);
         }
         let used = start.elapsed().as_secs_f64();
+        share[case] = 100.0 * used / seconds;
         println!(
-            "{label} ({models} model(s) per position), 4x oversampling, 48 kHz: {:.1}% of one core ({used:.2} s for {seconds} s of audio)",
-            100.0 * used / seconds
+            "{label}: {:.1}% of one core ({used:.2} s for {seconds} s of audio)",
+            share[case]
         );
     }
+    let ratio = |a: usize, b: usize| share[a] / share[b];
+    if share.iter().all(|s| s.is_finite()) {
+        println!(
+            "ratios in this run: heard + compare-with / one position {:.2} (mono), {:.2} (stereo); every position / \
+             one {:.2} (mono), {:.2} (stereo); stereo / mono {:.2} (one position), {:.2} (two), {:.2} (every)",
+            ratio(1, 0),
+            ratio(4, 3),
+            ratio(2, 0),
+            ratio(5, 3),
+            ratio(3, 0),
+            ratio(4, 1),
+            ratio(5, 2)
+        );
+    }
+}
+
+#[derive(Clone, Copy, PartialEq)]
+enum Running {
+    One,
+    Two,
+    All,
 }
