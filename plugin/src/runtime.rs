@@ -1,13 +1,14 @@
 //! The real-time side: the compared switch positions of the running circuit and the candidate, each with its
-//! models (one per input channel), crossfades, level match, and the meters for the editor.
+//! model (a stereo input's two channels as two lanes of one engine), crossfades, level match, and the meters for
+//! the editor.
 //!
 //! Models for a new circuit, new candidate parts or a new quality are built by a background worker and handed
 //! over through single-slot atomic mailboxes; retired models go back the same way to be freed off the audio
 //! thread. After `Processor::new`, nothing here allocates, frees, locks or blocks.
 //!
 //! Everything the processor does with a model goes through `Models` (build, pots, one sample, reset, meters,
-//! latency): "one model per compared position and channel" lives there and nowhere else, so it can become one
-//! model running the positions side by side without touching the rest.
+//! latency): "one engine per compared position, the channels as its lanes" lives there and nowhere else, so it
+//! can become one engine running the positions side by side without touching the rest.
 
 use crate::loudness::ShortTerm;
 use crate::params::{CabinetChoice, FamilyChoice, ListenPoint};
