@@ -67,6 +67,8 @@ struct Columns {
     rows: Vec<usize>,
     cols: Vec<usize>,
     weights: Vec<f64>,
+    /// One more than the largest row.
+    rows_needed: usize,
 }
 
 /// `recover` as one flat list: linear node `a` (over all clusters) is `base[a] - sum weight * volts[from]` over
@@ -77,6 +79,8 @@ struct Recovery {
     start: Vec<usize>,
     from: Vec<usize>,
     weight: Vec<f64>,
+    /// One more than the largest slot read or written.
+    slots_needed: usize,
 }
 
 impl Condensation {
@@ -214,6 +218,9 @@ impl Condensation {
         }
         c.cap_to_kept.start.push(c.cap_to_kept.rows.len());
         c.cap_to_linear.start.push(c.cap_to_linear.rows.len());
+        for columns in [&mut c.cap_to_kept, &mut c.cap_to_linear] {
+            columns.rows_needed = columns.rows.iter().max().map_or(0, |r| r + 1);
+        }
         // The recovery's shape: every linear node reads every neighbour of its cluster.
         let r = &mut c.recovery;
         for cl in &c.clusters {
@@ -380,8 +387,15 @@ impl Condensation {
             *out = L::splat(*per_volt).madd(jack, L::splat(*rail));
         }
         for (out, columns) in [(kept, &self.cap_to_kept), (linear, &self.cap_to_linear)] {
+            // Checked once here: every entry's row is below the output's length and its column below the
+            // number of capacitors (both fixed in `new`).
+            assert!(out.len() >= columns.rows_needed && history.len() >= self.caps.len());
             for ((r, k), w) in columns.rows.iter().zip(&columns.cols).zip(&columns.weights) {
-                out[*r] = L::splat(*w).madd(history[*k], out[*r]);
+                // SAFETY: r < rows_needed <= out.len() and k < caps.len() <= history.len(), as asserted.
+                unsafe {
+                    let o = out.get_unchecked_mut(*r);
+                    *o = L::splat(*w).madd(*history.get_unchecked(*k), *o);
+                }
             }
         }
     }
@@ -425,6 +439,8 @@ impl Condensation {
                     .copy_from_slice(&c.neighbour_slots);
             }
         }
+        let r = &mut self.recovery;
+        r.slots_needed = r.slot.iter().chain(&r.from).max().map_or(0, |s| s + 1);
     }
 
     /// The linear nodes' voltages from the kept ones: v_c = G_cc^-1 h_c - G_cc^-1 G_cD v_D, with `scratch` from
@@ -432,15 +448,19 @@ impl Condensation {
     #[inline(always)]
     pub fn recover<L: Lane>(&self, scratch: &[L], volts: &mut [L]) {
         let r = &self.recovery;
+        // Checked once here: every slot read or written lies below `volts`'s length (`set_slots` fixed them).
+        assert!(volts.len() >= r.slots_needed);
         for ((&slot, base), span) in r.slot.iter().zip(scratch).zip(r.start.windows(2)) {
             let mut v = *base;
             for (&from, &w) in r.from[span[0]..span[1]]
                 .iter()
                 .zip(&r.weight[span[0]..span[1]])
             {
-                v = L::splat(w).madd(volts[from], v);
+                // SAFETY: from < slots_needed <= volts.len(), as asserted.
+                v = L::splat(w).madd(unsafe { *volts.get_unchecked(from) }, v);
             }
-            volts[slot] = v;
+            // SAFETY: slot < slots_needed <= volts.len(), as asserted.
+            unsafe { *volts.get_unchecked_mut(slot) = v };
         }
     }
 }

@@ -486,12 +486,33 @@ impl<L: Lane> Nodal<L> {
             condensed,
             net,
         };
+        model.check_slots();
         model.condensed.set_slots(&model.slots);
         if let GainControl::Attenuator(law) = model.net.gain_control {
             model.attenuation = law.fraction(0.5);
         }
         model.operating_point()?;
         Ok(model)
+    }
+
+    /// Every index the hot loops read without a bounds check lies inside its vector (a set-up fault is a panic
+    /// here, never a stray write later).
+    fn check_slots(&self) {
+        for v in &self.valves {
+            assert!(v.residual_at.iter().all(|&i| i < self.step.len()));
+            assert!(v.step_at.iter().all(|&i| i < self.step.len()));
+            assert!(v.volts_at.iter().all(|&i| i < self.volts.len()));
+            assert!(v
+                .jacobian_at
+                .iter()
+                .flatten()
+                .all(|&i| i < self.jacobian.len()));
+        }
+        assert!(self.pair_column.iter().all(|&i| i < self.jacobian.len()));
+        assert!(self.ports.len() == 2 * self.valves.len() + 1);
+        for c in &self.caps {
+            assert!(c.volts_at.iter().all(|&i| i < self.volts.len()));
+        }
     }
 
     /// The netlist the model solves.
@@ -785,7 +806,10 @@ impl<L: Lane> Nodal<L> {
         };
         self.volts[half + self.pair_unknown] = self.pair_eval.volts;
         for (slot, out) in self.valves.iter().zip(self.valve_eval.iter_mut()) {
-            let [vp, vg, vk] = slot.volts_at.map(|i| self.volts[i]);
+            // SAFETY: `check_slots` (in `new`) holds every `volts_at` below `volts`'s length.
+            let [vp, vg, vk] = slot
+                .volts_at
+                .map(|i| unsafe { *self.volts.get_unchecked(i) });
             let (vpk, vgk) = ((vp - vk).to_lanes(), (vg - vk).to_lanes());
             let mut c = [[0.0; MAX_WIDTH]; 5];
             for lane in 0..L::WIDTH {
@@ -838,25 +862,31 @@ impl<L: Lane> Nodal<L> {
             *j = L::splat(*g);
         }
         for &at in &self.pair_column {
-            self.jacobian[at] *= self.pair_eval.volts_ds;
+            // SAFETY: `check_slots` (in `new`) holds the pair's column below `jacobian`'s length.
+            unsafe { *self.jacobian.get_unchecked_mut(at) *= self.pair_eval.volts_ds };
         }
         self.jacobian[self.pair_diagonal] += self.pair_eval.current_ds;
+        let (step, jacobian) = (self.step.as_mut_ptr(), self.jacobian.as_mut_ptr());
         for (slot, e) in self.valves.iter().zip(&self.valve_eval) {
-            // Into the plate +Ip, into the grid +Ig, into the cathode -(Ip + Ig).
-            let [p, g, k] = slot.residual_at;
-            self.step[p] += e.plate;
-            self.step[g] += e.grid;
-            self.step[k] -= e.plate + e.grid;
-            // Slopes by the plate, grid and cathode voltages (Ip of Vpk and Vgk, Ig of Vgk).
-            let (pk, gk, ig) = (e.plate_dvpk, e.plate_dvgk, e.grid_dvgk);
-            let slopes = [
-                [pk, gk, -(pk + gk)],
-                [L::default(), ig, -ig],
-                [-pk, -(gk + ig), pk + gk + ig],
-            ];
-            for (row, values) in slot.jacobian_at.iter().zip(slopes) {
-                for (at, v) in row.iter().zip(values) {
-                    self.jacobian[*at] += v;
+            // SAFETY: `Nodal::new` checks every `residual_at` against `step`'s length and every `jacobian_at`
+            // against `jacobian`'s (`check_slots`), and neither vector changes length after it.
+            unsafe {
+                // Into the plate +Ip, into the grid +Ig, into the cathode -(Ip + Ig).
+                let [p, g, k] = slot.residual_at;
+                *step.add(p) += e.plate;
+                *step.add(g) += e.grid;
+                *step.add(k) -= e.plate + e.grid;
+                // Slopes by the plate, grid and cathode voltages (Ip of Vpk and Vgk, Ig of Vgk).
+                let (pk, gk, ig) = (e.plate_dvpk, e.plate_dvgk, e.grid_dvgk);
+                let slopes = [
+                    [pk, gk, -(pk + gk)],
+                    [L::default(), ig, -ig],
+                    [-pk, -(gk + ig), pk + gk + ig],
+                ];
+                for (row, values) in slot.jacobian_at.iter().zip(slopes) {
+                    for (at, v) in row.iter().zip(values) {
+                        *jacobian.add(*at) += v;
+                    }
                 }
             }
         }
@@ -903,10 +933,11 @@ impl<L: Lane> Nodal<L> {
     /// Each device port's change for the Newton step in `step`, into `ports` (valves' Vpk, Vgk, then s).
     #[inline(always)]
     fn port_changes(&mut self) {
-        for (k, slot) in self.valves.iter().enumerate() {
-            let [dp, dg, dk] = slot.step_at.map(|i| self.step[i]);
-            self.ports[2 * k] = dp - dk;
-            self.ports[2 * k + 1] = dg - dk;
+        for (slot, ports) in self.valves.iter().zip(self.ports.chunks_exact_mut(2)) {
+            // SAFETY: `check_slots` (in `new`) holds every `step_at` below `step`'s length.
+            let [dp, dg, dk] = slot.step_at.map(|i| unsafe { *self.step.get_unchecked(i) });
+            ports[0] = dp - dk;
+            ports[1] = dg - dk;
         }
         let last = self.ports.len() - 1;
         self.ports[last] = self.step[self.pair_unknown];
@@ -1089,7 +1120,9 @@ impl<L: Lane> Nodal<L> {
 /// The voltage across capacitor `slot`, a to b.
 #[inline(always)]
 fn across<L: Lane>(volts: &[L], slot: &CapSlot) -> L {
-    volts[slot.volts_at[0]] - volts[slot.volts_at[1]]
+    // SAFETY: `check_slots` (in `Nodal::new`) holds every capacitor's `volts_at` below `volts`'s length, and
+    // `volts` is only ever the model's own voltage vector.
+    unsafe { *volts.get_unchecked(slot.volts_at[0]) - *volts.get_unchecked(slot.volts_at[1]) }
 }
 
 /// The negation of a mask.
