@@ -10,7 +10,7 @@ pub const RATE: f64 = 48_000.0;
 
 /// One valve of a circuit as the analyses name it.
 #[derive(Clone, Debug, PartialEq)]
-pub struct ValveInfo {
+pub struct ValveSocket {
     /// "stage 1", .., "stage N (gain stage)", "cathode follower".
     pub name: String,
     pub tube: breakdown_dsp::devices::TubeType,
@@ -19,23 +19,23 @@ pub struct ValveInfo {
 }
 
 /// Every valve of `circuit` in signal order from the jack (the order of the engine's meters and readouts).
-pub fn valves_of(circuit: &Circuit) -> Vec<ValveInfo> {
-    let mut v: Vec<ValveInfo> = circuit
+pub fn valves_of(circuit: &Circuit) -> Vec<ValveSocket> {
+    let mut v: Vec<ValveSocket> = circuit
         .preamp
         .iter()
         .enumerate()
-        .map(|(k, p)| ValveInfo {
+        .map(|(k, p)| ValveSocket {
             name: format!("stage {}", k + 1),
             tube: p.tube,
             grid_stopper: Some(p.grid_stopper),
         })
         .collect();
-    v.push(ValveInfo {
+    v.push(ValveSocket {
         name: format!("stage {} (gain stage)", circuit.preamp.len() + 1),
         tube: circuit.gain_stage.tube,
         grid_stopper: Some(circuit.gain_stage.grid_stopper),
     });
-    v.push(ValveInfo {
+    v.push(ValveSocket {
         name: "cathode follower".into(),
         tube: circuit.follower.tube,
         grid_stopper: None,

@@ -30,7 +30,8 @@
 //! go to the Zeners, then to the valve nearer the jack (its grid before its cut-off).
 
 use super::common::{
-    checked, lin_space, log_space, parallel, run_with, valves_of, Outcome, Rig, Stimulus, ValveInfo,
+    checked, lin_space, log_space, parallel, run_with, valves_of, Outcome, Rig, Stimulus,
+    ValveSocket,
 };
 use breakdown_dsp::devices::Triode;
 use breakdown_dsp::engine::CLAMPED_CURRENT;
@@ -88,7 +89,7 @@ pub struct Criteria {
 }
 
 impl Criteria {
-    pub fn new(valves: &[ValveInfo], idle: &Readout) -> Criteria {
+    pub fn new(valves: &[ValveSocket], idle: &Readout) -> Criteria {
         let mut grid_current = Vec::new();
         let mut cutoff_current = Vec::new();
         for (info, v) in valves.iter().zip(idle.valves()) {
@@ -107,17 +108,12 @@ impl Criteria {
         }
     }
 
-    /// Every element that can limit, in the order ties go: the Zeners, then each valve from the jack (its
-    /// grid, then its cut-off).
+    /// Every element that can limit, in the order ties go (`tie_order`; a valve without a grid-current
+    /// criterion has no grid entry).
     pub fn elements(&self) -> Vec<Limiter> {
-        let mut e = vec![Limiter::Zener];
-        for (i, g) in self.grid_current.iter().enumerate() {
-            if g.is_some() {
-                e.push(Limiter::Grid(i));
-            }
-            e.push(Limiter::Cutoff(i));
-        }
-        e
+        tie_order(self.grid_current.len())
+            .filter(|l| !matches!(l, Limiter::Grid(i) if self.grid_current[*i].is_none()))
+            .collect()
     }
 
     fn is_follower(&self, i: usize) -> bool {
@@ -203,22 +199,24 @@ impl Flags {
     pub fn any_valve(&self) -> bool {
         self.grid.iter().chain(&self.cutoff).any(|b| *b)
     }
-    /// Active elements in criteria order (see [`Criteria::elements`]).
+    /// Active elements in the order ties go (`tie_order`).
     pub fn active(&self) -> Vec<Limiter> {
-        let mut a = Vec::new();
-        if self.zener {
-            a.push(Limiter::Zener);
-        }
-        for i in 0..MAX_VALVES {
-            if self.grid[i] {
-                a.push(Limiter::Grid(i));
-            }
-            if self.cutoff[i] {
-                a.push(Limiter::Cutoff(i));
-            }
-        }
-        a
+        tie_order(MAX_VALVES)
+            .filter(|l| match *l {
+                Limiter::Clean => false,
+                Limiter::Zener => self.zener,
+                Limiter::Grid(i) => self.grid[i],
+                Limiter::Cutoff(i) => self.cutoff[i],
+            })
+            .collect()
     }
+}
+
+/// Every limiter of `valves` valves in the order ties are broken: the Zeners, then from the jack each valve's
+/// grid current and its cut-off.
+fn tie_order(valves: usize) -> impl Iterator<Item = Limiter> {
+    std::iter::once(Limiter::Zener)
+        .chain((0..valves).flat_map(|i| [Limiter::Grid(i), Limiter::Cutoff(i)]))
 }
 
 /// One cell of the map.
