@@ -246,12 +246,15 @@ pub fn input_output(
         });
         let latency = shared.latency.load(Ordering::Relaxed);
         let rate = shared.sample_rate.load(Ordering::Relaxed);
+        let channels = match shared.models.load(Ordering::Relaxed) {
+            2 => "stereo: two channels as two lanes of one model per position",
+            _ => "mono: one model per position",
+        };
         dim(
             ui,
             format!(
-                "latency {latency} samples ({:.2} ms), {} model(s) per position",
+                "latency {latency} samples ({:.2} ms), {channels}",
                 latency as f64 * 1000.0 / rate,
-                shared.models.load(Ordering::Relaxed)
             ),
         );
     });
