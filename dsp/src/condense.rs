@@ -30,9 +30,6 @@ struct Cluster {
     work: Vec<f64>,
     /// Where this cluster's G_cc^-1 h_c starts in the shared scratch.
     offset: usize,
-    /// Where its nodes' and its neighbours' voltages sit in the solver's voltage vector.
-    node_slots: Vec<usize>,
-    neighbour_slots: Vec<usize>,
 }
 
 /// The device nodes kept as unknowns, the linear clusters eliminated, and the matrices that do it.
@@ -129,8 +126,6 @@ impl Condensation {
                         feed: Vec::new(),
                         work: Vec::new(),
                         offset: 0,
-                        node_slots: Vec::new(),
-                        neighbour_slots: Vec::new(),
                     });
                     which[r] = Some(clusters.len() - 1);
                     clusters.len() - 1
@@ -429,17 +424,16 @@ impl Condensation {
 
     /// Where each node's voltage sits in the vector `recover` writes (`slots[node]`).
     pub fn set_slots(&mut self, slots: &[usize]) {
-        for c in self.clusters.iter_mut() {
-            c.node_slots = c.nodes.iter().map(|&i| slots[i]).collect();
-            c.neighbour_slots = c.neighbours.iter().map(|&i| slots[i]).collect();
-            for (a, &slot) in c.node_slots.iter().enumerate() {
-                let at = self.recovery.start[c.offset + a];
-                self.recovery.slot[c.offset + a] = slot;
-                self.recovery.from[at..at + c.neighbour_slots.len()]
-                    .copy_from_slice(&c.neighbour_slots);
+        let r = &mut self.recovery;
+        for c in &self.clusters {
+            for (a, &node) in c.nodes.iter().enumerate() {
+                let at = r.start[c.offset + a];
+                r.slot[c.offset + a] = slots[node];
+                for (from, &neighbour) in r.from[at..].iter_mut().zip(&c.neighbours) {
+                    *from = slots[neighbour];
+                }
             }
         }
-        let r = &mut self.recovery;
         r.slots_needed = r.slot.iter().chain(&r.from).max().map_or(0, |s| s + 1);
     }
 

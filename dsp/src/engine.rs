@@ -466,8 +466,7 @@ struct ProbeNodes {
     plate_count: usize,
 }
 
-/// Most models one engine runs side by side (`Lane::WIDTH` of the widest packed lane type).
-pub const MAX_LANES: usize = 4;
+pub use crate::lane::MAX_LANES;
 
 /// The circuit model plus oversampling and controls, at one host sample rate. `L` is the model's lane type:
 /// `f64` runs one model; a packed type (`crate::lanes`) runs two or four that share the knobs, each with its own

@@ -7,8 +7,8 @@
 use std::fmt::Debug;
 use std::ops::{Add, AddAssign, Div, Mul, MulAssign, Neg, Sub, SubAssign};
 
-/// The widest lane type's `WIDTH`.
-pub const MAX_WIDTH: usize = 4;
+/// Most models one lane type holds (`WIDTH` of the widest packed type), and so one engine runs side by side.
+pub const MAX_LANES: usize = 4;
 
 /// One value per model, with the arithmetic the solver needs.
 pub trait Lane:
@@ -38,9 +38,9 @@ pub trait Lane:
     /// Set the value of model `index`.
     fn set(&mut self, index: usize, value: f64);
     /// Every model's value, in the first `WIDTH` slots (the rest zero).
-    fn to_lanes(self) -> [f64; MAX_WIDTH];
+    fn to_lanes(self) -> [f64; MAX_LANES];
     /// The models' values from the first `WIDTH` slots.
-    fn from_lanes(values: [f64; MAX_WIDTH]) -> Self;
+    fn from_lanes(values: [f64; MAX_LANES]) -> Self;
     /// a b + c.
     fn madd(self, b: Self, c: Self) -> Self;
     fn abs(self) -> Self;
@@ -102,11 +102,11 @@ impl Lane for f64 {
         *self = value;
     }
     #[inline(always)]
-    fn to_lanes(self) -> [f64; MAX_WIDTH] {
+    fn to_lanes(self) -> [f64; MAX_LANES] {
         [self, 0.0, 0.0, 0.0]
     }
     #[inline(always)]
-    fn from_lanes(values: [f64; MAX_WIDTH]) -> Self {
+    fn from_lanes(values: [f64; MAX_LANES]) -> Self {
         values[0]
     }
     #[inline(always)]

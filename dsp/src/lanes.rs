@@ -3,7 +3,7 @@
 //! ones). The arithmetic is the scalar lane's operation for operation (a b + c as a multiply then an add; min
 //! and max keep `self` where either is NaN), so each lane's result equals the one-model solver's.
 
-use crate::lane::{Lane, MAX_WIDTH};
+use crate::lane::{Lane, MAX_LANES};
 pub use wide::{f64x2, f64x4};
 
 macro_rules! packed_lane {
@@ -28,13 +28,13 @@ macro_rules! packed_lane {
                 *self = <$t>::new(a);
             }
             #[inline(always)]
-            fn to_lanes(self) -> [f64; MAX_WIDTH] {
-                let mut out = [0.0; MAX_WIDTH];
+            fn to_lanes(self) -> [f64; MAX_LANES] {
+                let mut out = [0.0; MAX_LANES];
                 out[..$width].copy_from_slice(&self.to_array());
                 out
             }
             #[inline(always)]
-            fn from_lanes(values: [f64; MAX_WIDTH]) -> Self {
+            fn from_lanes(values: [f64; MAX_LANES]) -> Self {
                 let mut a = [0.0; $width];
                 a.copy_from_slice(&values[..$width]);
                 <$t>::new(a)

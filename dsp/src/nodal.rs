@@ -29,7 +29,7 @@ use crate::condense::Condensation;
 use crate::devices::triode::{Triode, TriodeCurrents};
 use crate::devices::zener::{PairPoint, ZenerPair};
 use crate::elements::{Knob, Stamper, Terminal};
-use crate::lane::{Lane, MAX_WIDTH};
+use crate::lane::{Lane, MAX_LANES};
 use crate::netlist::Netlist;
 
 /// Newton iterations allowed per sample before the restart from the last solution.
@@ -771,7 +771,7 @@ impl<L: Lane> Nodal<L> {
         self.volts[half..half + x.len()].copy_from_slice(x);
         // Each lane's devices are evaluated from plain arrays, the results packed once per quantity.
         let s = x[self.pair_unknown].to_lanes();
-        let mut pair = [[0.0; MAX_WIDTH]; 6];
+        let mut pair = [[0.0; MAX_LANES]; 6];
         for lane in 0..L::WIDTH {
             let p = &self.pairs[self.active[lane]];
             let point = if p.is_open() {
@@ -811,7 +811,7 @@ impl<L: Lane> Nodal<L> {
                 .volts_at
                 .map(|i| unsafe { *self.volts.get_unchecked(i) });
             let (vpk, vgk) = ((vp - vk).to_lanes(), (vg - vk).to_lanes());
-            let mut c = [[0.0; MAX_WIDTH]; 5];
+            let mut c = [[0.0; MAX_LANES]; 5];
             for lane in 0..L::WIDTH {
                 let t: TriodeCurrents = slot.model.currents(vpk[lane], vgk[lane]);
                 c[0][lane] = t.plate;

@@ -321,19 +321,18 @@ impl Models {
                     .map_err(|e| e.to_string())?,
             )
         };
-        let pair = each_engine!(&mut engines, engine => {
+        let (threshold_positive, threshold_negative) = each_engine!(&mut engines, engine => {
             if calibration.is_finite() && calibration > 0.0 {
                 engine.set_input_calibration(calibration);
             }
             // The processor reads the listening output, the wiper and the clamp node only: decimate just those.
             engine.set_active_probes(&[Probe::Listen, Probe::Wiper, Probe::Clamp]);
-            engine.model().pair(0).cloned()
+            match engine.model().pair(0) {
+                Some(pair) if !pair.is_open() => pair.thresholds_at(CLAMPED_CURRENT),
+                _ => (f64::NAN, f64::NAN),
+            }
         });
         let position = &slot.clamp.position[0];
-        let (threshold_positive, threshold_negative) = match &pair {
-            Some(pair) if !pair.is_open() => pair.thresholds_at(CLAMPED_CURRENT),
-            _ => (f64::NAN, f64::NAN),
-        };
         let parts = PartsInfo {
             volts_positive: position.positive.map_or(f64::NAN, |z| z.volts),
             volts_negative: position.negative.map_or(f64::NAN, |z| z.volts),
